@@ -28,7 +28,8 @@ input configurations are checked on a random sample of configurations, for non-c
 Engines
 -------
 ``exact`` enumerates the exogenous configurations ("worlds") that can matter for the query
-(the exogenous parents of the query's ancestral set), in chunks, pushes each chunk through the
+(the exogenous parents of the query's ancestral set; ``prune=False`` enumerates them all), in
+chunks, pushes each chunk through the
 mechanisms as dense matrix products (worlds x features @ weights, float64, C-contiguous) and
 weights each world by P(u):
 
@@ -57,7 +58,7 @@ discrete Bayesian network over U and V with deterministic CPTs (tabulated by a s
 evaluation of each MLP); :func:`twin_network` builds the twin network of Balke & Pearl (1994)
 (shared U, a factual and a counterfactual copy of V, the intervened copy cut and clamped), and
 pgmpy's variable elimination answers. Above ``reference_max_variables`` endogenous variables
-(default 10) or 200,000 CPT entries the reference is None.
+(default 12) or 200,000 CPT entries the reference is None.
 
 File format (``format_version`` 1; see docs/formats/neural_scm.md)::
 
@@ -258,17 +259,18 @@ def _input_offsets(cards: Sequence[int]) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 # the vectorised evaluation (engine path)
 # ---------------------------------------------------------------------------------------------
-_ROW_BASES: dict[tuple[int, int], np.ndarray] = {}
+_ROW_BASES: dict[tuple[int, int, int], np.ndarray] = {}
 
 
-def _row_base(m: int, width: int) -> np.ndarray:
-    """``arange(m) * width``, cached: the flat offsets of the one-hot rows of a chunk."""
-    key = (m, width)
+def _row_base(m: int, width: int, offset: int) -> np.ndarray:
+    """``arange(m) * width + offset``, cached: where the one-hot block at ``offset`` of each row
+    of a chunk starts in the flattened input matrix."""
+    key = (m, width, offset)
     base = _ROW_BASES.get(key)
     if base is None:
-        if len(_ROW_BASES) > 64:
+        if len(_ROW_BASES) > 256:
             _ROW_BASES.clear()
-        base = _ROW_BASES[key] = np.arange(m, dtype=np.intp) * width
+        base = _ROW_BASES[key] = np.arange(m, dtype=np.intp) * width + offset
     return base
 
 
@@ -279,16 +281,22 @@ def _eval_mechanism(mech: Mechanism, inputs: Sequence[np.ndarray], offsets: Sequ
     x = np.zeros((m, width))
     x[:, -1] = 1.0  # the folded bias
     flat = x.reshape(-1)
-    base = _row_base(m, width)
     for off, col in zip(offsets, inputs):
-        flat[base + col + off] = 1.0
+        flat[_row_base(m, width, off) + col] = 1.0
     h = x @ mech.folded
-    for k in range(1, len(mech.weights)):
+    last = len(mech.weights) - 1
+    for k in range(1, last + 1):
         np.maximum(h, 0.0, out=h)
         h = h @ mech.weights[k]
-        h += mech.biases[k]
-    if h.shape[1] == 2:  # same as argmax (a tie goes to state 0), without a strided reduction
-        return (h[:, 1] > h[:, 0]).astype(np.intp)
+        if k < last or h.shape[1] != 2:
+            h += mech.biases[k]
+    if last == 0:
+        return np.argmax(h, axis=1)
+    if h.shape[1] == 2:
+        # argmax of (h + b) for two states (a tie goes to state 0): the same additions, without
+        # a slow broadcast over a two-column array or a strided reduction
+        b = mech.biases[last]
+        return ((h[:, 1] + b[1]) > (h[:, 0] + b[0])).astype(np.intp)
     return np.argmax(h, axis=1)
 
 
@@ -1037,7 +1045,7 @@ def from_dict(doc: object, *, where: str = "neural_scm", base_dir: pathlib.Path 
 _DEFAULTS: dict[str, Any] = {
     "n_states": 2, "n_exogenous": 3, "depth": 1, "max_in_degree": 3, "n_confounders": None,
     "confounder_states": 2, "n_samples": 2000, "seed": 0, "max_worlds": MAX_WORLDS,
-    "reference_max_variables": 10, "min_evidence_frequency": 0.05, "prune": True,
+    "reference_max_variables": 12, "min_evidence_frequency": 0.05, "prune": True,
 }
 
 
@@ -1065,7 +1073,7 @@ class NeuralSCMFamily(FamilyBase):
         Seed of the sampling streams.
     max_worlds : int, default 2**30
         Exact enumeration beyond this many exogenous worlds raises ModelError.
-    reference_max_variables : int, default 10
+    reference_max_variables : int, default 12
         Endogenous variables above which :meth:`reference` returns None.
     min_evidence_frequency : float, default 0.05
         Generated evidence is kept when at least this fraction of simulated worlds matches it.
@@ -1256,7 +1264,10 @@ class NeuralSCMFamily(FamilyBase):
                       note=f"{n_worlds} worlds")
 
     def _sampling(self, scm: NeuralSCM, query: Query, plan: _Plan) -> Answer:
-        n = int(self._p("n_samples"))
+        n = self._p("n_samples")
+        if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
+            raise InputError.at("neural_scm", "n_samples", "an integer >= 1", n)
+        n = int(n)
         rng = make_rng(int(self._p("seed")), "sampling", zlib.crc32(query.describe().encode()))
         rows = _chunk_rows(scm, plan)
         n_acc = n_hit = 0
@@ -1365,9 +1376,11 @@ class NeuralSCMFamily(FamilyBase):
 
         Exact on the graph axis: exponential, because the enumerated worlds are the product of the
         exogenous supports of the query's ancestral set, which grows linearly with n on chain,
-        grid, random and layered graphs; on ``tree`` (edges point from the root down, so a node's
-        ancestors are its path to the root, of length ~log2 n) the worlds are ~n_exogenous^log2(n),
-        a polynomial, as long as ``prune`` is on. The mechanism axis is polynomial for both
+        grid and layered graphs (sublinearly on ``random``, whose parents are drawn from all
+        earlier nodes: there the growth is stretched-exponential, still faster than any
+        polynomial); on ``tree`` (edges point from the root down, so a node's ancestors are its
+        path to the root, of length ~log2 n) the worlds are ~n_exogenous^log2(n), a polynomial,
+        as long as ``prune`` is on. The mechanism axis is polynomial for both
         engines (hidden width^2 per hidden layer, width per input/output layer); sampling is
         polynomial on the graph axis (n_samples x multiply-adds of the ancestral set).
         """

@@ -46,15 +46,11 @@ def node_name(i: int) -> str:
 
 
 def _check_n(n: int, where: str) -> int:
-    if isinstance(n, bool) or not isinstance(n, int) or n < 1:
-        try:
-            n_int = int(n)
-        except (TypeError, ValueError):
-            n_int = -1
-        if n_int != n or n_int < 1:
-            raise InputError.at(where, "n", "an integer >= 1", n)
-        n = n_int
-    return n
+    import numbers
+
+    if isinstance(n, bool) or not isinstance(n, numbers.Integral) or n < 1:
+        raise InputError.at(where, "n", "an integer >= 1", n)
+    return int(n)
 
 
 def _empty(n: int) -> nx.DiGraph:

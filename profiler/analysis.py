@@ -256,7 +256,8 @@ def competing_laws(verdict) -> list[str]:
         if chosen is not None and chosen.family == cls:
             names.append(chosen.name)
             continue
-        same = [lf for lf in verdict.laws if lf.family == cls and lf.name.startswith(stem)] \
+        same = [lf for lf in verdict.laws
+                if lf.family == cls and lf.name in (stem, stem + "_bare")] \
             or [lf for lf in verdict.laws if lf.family == cls]
         if same:
             names.append(max(same, key=lambda lf: lf.loglik).name)

@@ -38,7 +38,7 @@ import model_zoo
 from model_zoo.base import Level, Query
 from model_zoo.errors import InfercostError, InputError, UnsupportedQuery
 
-__all__ = ["audit_model", "load_model", "structural_summary", "compare_with_theory",
+__all__ = ["audit_model", "audit_instance", "load_model", "structural_summary", "compare_with_theory",
            "format_audit", "AGREEMENTS", "NETWORK_SUFFIXES"]
 
 #: Outcomes of :func:`compare_with_theory`.
@@ -265,6 +265,9 @@ def structural_summary(family: Any, instance: Any) -> dict[str, Any]:
     out["levels_expressible"] = [lv.value for lv in Level if lv in family.levels]
     out["methods"] = sorted(family.methods)
     out["work_unit"] = getattr(family, "work_unit", "operations")
+    units = getattr(family, "work_units", None)
+    if isinstance(units, dict):
+        out["work_units"] = {str(k): str(v) for k, v in units.items()}
     out["profile"] = profile
     return out
 
@@ -382,6 +385,7 @@ def _measure_stream(family: Any, instance: Any, queries: Sequence[Query], method
         yield ("q", i, float(ans.value), ans.stderr, float(ans.work if work is None else work),
                seconds, peak)
     for i, q in enumerate(queries[:n_sampling_probes]):
+        family.answer(instance, q, method="sampling")  # warm-up: plans and imports
         t0 = time.perf_counter()
         ans = family.answer(instance, q, method="sampling")
         yield ("s", i, float(ans.value), ans.stderr, float(ans.work), time.perf_counter() - t0,
@@ -422,6 +426,12 @@ def _child(conn, stream_fn, args, memory_bytes, threads) -> None:
             resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
     except (ImportError, ValueError, OSError):
         pass  # no cap available: the predicted-bytes pre-flight check still applies
+    import gc
+
+    # Everything inherited from the parent moves to the permanent generation: the harness's
+    # gc.collect() between series then scans only what measuring allocates (and does not touch,
+    # hence copy, the parent's pages).
+    gc.freeze()
     try:
         with _thread_limit(threads):
             for msg in stream_fn(*args):
@@ -485,7 +495,10 @@ def _run_stream(stream_fn, args: tuple, *, memory_mb: float, timeout_s: float, i
             proc.join(5)
             parent.close()
     # in-process: the time cap is checked between messages only
+    import gc
+
     deadline = time.monotonic() + timeout_s
+    gc.freeze()
     try:
         with _thread_limit(threads):
             for msg in stream_fn(*args):
@@ -494,6 +507,8 @@ def _run_stream(stream_fn, args: tuple, *, memory_mb: float, timeout_s: float, i
                     return msgs, f"time cap of {timeout_s:g} s reached"
     except MemoryError:
         return msgs, "out of memory"
+    finally:
+        gc.unfreeze()
     return msgs, None
 
 
@@ -706,9 +721,31 @@ def audit_model(source: str | os.PathLike, *, queries: Sequence[str] = (), n_que
         raise InputError.at("audit", "memory_mb", "a number > 0", memory_mb)
     if not (isinstance(point_timeout_s, (int, float)) and point_timeout_s > 0):
         raise InputError.at("audit", "point_timeout_s", "a number > 0", point_timeout_s)
+    family, instance, model_name = load_model(source)
+    return audit_instance(family, instance, name=model_name, source=os.fspath(source),
+                          queries=queries, n_queries=n_queries, method=method,
+                          memory_mb=memory_mb, point_timeout_s=point_timeout_s, seed=seed,
+                          target_stderr=target_stderr, isolate=isolate, options=options,
+                          threads=threads)
+
+
+def audit_instance(family: Any, instance: Any, *, name: str | None = None,
+                   source: str | None = None, queries: Sequence[str] = (), n_queries: int = 10,
+                   method: str = "exact", memory_mb: float = 2048, point_timeout_s: float = 20,
+                   seed: int = 7, target_stderr: float = TARGET_STDERR, isolate: bool = True,
+                   options: bool = True, threads: int | None = 1) -> dict[str, Any]:
+    """:func:`audit_model` on an instance already in hand (e.g. built in a notebook).
+
+    ``family`` is a family object and ``instance`` one of its instances; the other parameters
+    and the result are those of :func:`audit_model`.
+    """
+    if method not in ("exact", "sampling"):
+        raise InputError.at("audit", "method", "'exact' or 'sampling'", method)
+    if isinstance(n_queries, bool) or not isinstance(n_queries, int) or n_queries < 0:
+        raise InputError.at("audit", "n_queries", "an integer >= 0", n_queries)
     if isinstance(queries, str):
         queries = [queries]
-    family, instance, model_name = load_model(source)
+    model_name = name or str(getattr(instance, "name", "model"))
     if method not in family.methods:
         raise UnsupportedQuery(f"family {family.name!r} has no {method!r} engine "
                                f"(it has: {', '.join(sorted(family.methods))})")
@@ -744,6 +781,14 @@ def audit_model(source: str | os.PathLike, *, queries: Sequence[str] = (), n_que
             "median_seconds": None, "p90_seconds": None, "work": None, "peak_bytes": None,
             "n_queries": 0, "n_asked": len(qs), "skipped": None, "method": method,
         }
+        for other in sorted(family.methods):
+            # the other engine's formula too: it costs nothing and answers "would it be cheaper"
+            if other != method:
+                try:
+                    entry.setdefault("predicted_work_other", {})[other] = _mean(
+                        float(family.predicted_work(instance, q, method=other)) for q in qs)
+                except InfercostError:
+                    pass
         levels[lv.value] = entry
         if pb_known and max(pb_known) > cap_bytes:
             entry["skipped"] = (f"predicted peak memory {max(pb_known) / _MIB:,.0f} MiB exceeds "
@@ -786,7 +831,7 @@ def audit_model(source: str | os.PathLike, *, queries: Sequence[str] = (), n_que
     return _json_safe({
         "model": model_name,
         "family": family.name,
-        "source": os.fspath(source),
+        "source": source if source is not None else model_name,
         "method": method,
         "memory_mb": memory_mb,
         "point_timeout_s": point_timeout_s,
@@ -988,7 +1033,9 @@ def format_audit(result: dict[str, Any]) -> str:
     if s.get("treewidth_upper") is not None:
         lo, hi = s["treewidth_lower"], s["treewidth_upper"]
         tw = f"{hi} (exact)" if s.get("treewidth_exact") else f"between {lo} and {hi}"
-    pairs = [("nodes", _fmt_num(s.get("nodes"))), ("edges", _fmt_num(s.get("edges"))),
+    is_circuit = "n_nodes" in s
+    pairs = [("variables" if is_circuit else "nodes", _fmt_num(s.get("nodes"))),
+             ("circuit edges" if is_circuit else "edges", _fmt_num(s.get("edges"))),
              ("max in-degree", _fmt_num(s.get("max_in_degree"))),
              ("free parameters", _fmt_num(s.get("parameters")))]
     if "states" in s:
@@ -1007,7 +1054,7 @@ def format_audit(result: dict[str, Any]) -> str:
     pairs.append(("levels", ", ".join(s.get("levels_expressible", []))))
     width = max(len(k) for k, _ in pairs)
     lines += [f"  {k.ljust(width)}  {v}" for k, v in pairs]
-    unit = s.get("work_unit", "operations")
+    unit = (s.get("work_units") or {}).get(result.get("method"), s.get("work_unit", "operations"))
     lines += ["", f"cost per query (work in {unit})"]
     head = ("level", "predicted work", "predicted peak", "median", "p90", "work", "peak", "n")
     table = [head]

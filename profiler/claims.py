@@ -39,6 +39,7 @@ undecided; ``strict=True`` in :func:`exit_code` makes them exit 1 as well.
 from __future__ import annotations
 
 import math
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -158,7 +159,11 @@ def claims_from_list(items: Any, *, source: str = "claims") -> list[Claim]:
         _choice(where, "level", d["level"], _LEVELS)
         _choice(where, "method", d["method"], _METHODS)
         _choice(where, "axis", d["axis"], _AXES)
-        _choice(where, "topology", d["topology"], _TOPOLOGIES)
+        if not re.fullmatch(r"[A-Za-z][A-Za-z0-9_-]*", d["topology"]):
+            # Families may list their own shapes (a circuit's "balanced"), so only the spelling
+            # is checked here; an unknown shape simply matches no stored curve.
+            raise InputError.at(where, "topology", "a shape name such as "
+                                + ", ".join(_TOPOLOGIES), d["topology"])
         fixed = d.get("fixed")
         if fixed is not None and (isinstance(fixed, bool) or not isinstance(fixed, int)
                                   or fixed < 1):

@@ -27,7 +27,7 @@ Caps
 fresh worker is started for the next point. The worker plans its own repeats to finish before
 the cap, so only a point whose *first* pass is too slow is killed.
 *Memory*: the worker sets ``RLIMIT_AS`` to its baseline address space (measured after its
-imports) plus ``memory_mb``. The limit counts virtual memory, which numpy and BLAS reserve
+imports, and again before each point) plus ``memory_mb``. The limit counts virtual memory, which numpy and BLAS reserve
 generously, so the baseline is added rather than the cap taken alone; what the cap bounds is the
 growth of the address space during a point. An allocation past it raises ``MemoryError`` in the
 worker and the point is stored ``memory``; the machine never swaps.
@@ -268,6 +268,8 @@ def check_answers(family: Any, instance: Any, queries: Sequence[Any], answers: S
     """
     ref_stderr = getattr(family, "reference_stderr", None)
     inf = math.inf if deadline is None else deadline
+    started = time.perf_counter()
+    first_call = True
     n_checked = n_wrong = n_skipped = 0
     max_error: float | None = None
     detail = ""
@@ -277,6 +279,11 @@ def check_answers(family: Any, instance: Any, queries: Sequence[Any], answers: S
             n_skipped += 1
             continue
         r = family.reference(instance, q)
+        if first_call:
+            # The first call may pay one-off costs (importing a reference library); the time
+            # allowance starts after it.
+            first_call = False
+            inf += time.perf_counter() - started
         if r is None:
             continue
         r = float(r)
@@ -623,6 +630,9 @@ def worker_main() -> None:
                 if state is None:
                     raise RuntimeError("worker not initialised")
                 _limit_cpu(float(msg["deadline_s"]) + float(msg["reference_s"]))
+                # Re-based per point: what earlier points imported lazily (a reference engine,
+                # say) is part of the baseline, not of this point's allowance.
+                _limit_address_space(int(state.ctx["memory_mb"]))
                 t0 = time.perf_counter()
                 fields = state.point(int(msg["size"]), float(msg["deadline_s"]),
                                      float(msg["reference_s"]))
@@ -894,6 +904,8 @@ class _CurveDriver:
         self.workers: dict[str, dict[str, Any]] = {}
         self.facts: dict[str, Any] = {}
         self.realized: dict[int, int] = {}
+        #: Seconds the last point spent in its reference checks (after its timing was safe).
+        self.last_reference_s = 0.0
 
     def _ensure(self) -> _Worker:
         if self.worker is None or self.worker.proc.poll() is not None:
@@ -935,6 +947,8 @@ class _CurveDriver:
         phase = "building"
         answering_at: float | None = None
         first_pass: float | None = None
+        measured_at: float | None = None
+        self.last_reference_s = 0.0
         try:
             w.send({"op": "point", "size": int(size), "reference_s": reference_s,
                     "deadline_s": max(0.01, cap * _SELF_DEADLINE - 0.02)})
@@ -951,8 +965,13 @@ class _CurveDriver:
                     # Timing is safe; the reference checks get their own window.
                     fields.update(msg.get("fields", {}))
                     phase = "reference"
-                    deadline = time.monotonic() + reference_s + max(1.0, 0.2 * reference_s)
+                    measured_at = time.monotonic()
+                    # The worker stops starting checks after reference_s (counted from its first
+                    # check, which may import a reference library); one slow call gets slack.
+                    deadline = measured_at + 2 * reference_s + 30.0
                 elif kind == "done":
+                    if measured_at is not None:
+                        self.last_reference_s = time.monotonic() - measured_at
                     fields.update(msg.get("fields", {}))
                     status = str(fields.pop("status", "error"))
                     return (self._point(size, status, w.id, fields), time.monotonic() - t0,
@@ -966,6 +985,8 @@ class _CurveDriver:
             self.worker = None
             n = max(int(fields.get("n_queries") or self.spec.queries or 1), 1)
             if phase == "reference":
+                if measured_at is not None:
+                    self.last_reference_s = time.monotonic() - measured_at
                 status = str(fields.pop("status", "ok"))
                 note = f"reference checks did not finish within {reference_s:g} s; answers unchecked"
                 fields["message"] = "; ".join(m for m in (fields.get("message"), note) if m)
@@ -1052,8 +1073,11 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
     sched = schedule if schedule is not None else make_schedule(spec)
     driver = _CurveDriver(study_ctx, curve_index, spec)
     cap = float(study_ctx.point_timeout_s)
+    # (size, wall seconds without reference checks) of measured points, for budget predictions;
+    # reference checks are predicted apart: their first call may pay a one-off import.
     walls: list[tuple[int, float]] = [(p.size, w) for p in history
                                       if (w := point_seconds_estimate(p)) is not None]
+    reference_times: list[float] = []
     new_points: list[Point] = []
     point_seconds: dict[int, tuple[float, float | None]] = {}
     reason, cut = "", False
@@ -1104,6 +1128,8 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
                 break
             if budget is not None:
                 need = predicted_point_seconds(walls, size, cap_seconds=cap)
+                if len(reference_times) >= 2:
+                    need += min(reference_times[1:])
                 if need > budget():
                     reason, cut = "budget", True
                     break
@@ -1118,7 +1144,8 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
             history.append(point)
             new_points.append(point)
             point_seconds[point.size] = (wall, inside)
-            walls.append((point.size, wall))
+            walls.append((point.size, max(wall - driver.last_reference_s, 0.0)))
+            reference_times.append(driver.last_reference_s)
             if on_point is not None:
                 on_point(point)
             emit({"event": "point", "size": point.size, "status": point.status,

@@ -288,6 +288,17 @@ def _series(curve: CurveResult, kind: str):
     return ok, cens, wrong
 
 
+_LAW_WORDS = {"power": "power law a·n^k", "nlogn": "n log n", "powerlog": "n^k·(log n)^m",
+              "exponential": "exponential a·b^n", "stretched": "stretched exp(β·n^γ)"}
+
+
+def _law_words(name: str) -> str:
+    """Legend text of a fitted law; ``_bare`` variants lack the constant overhead c₀."""
+    stem = name.removesuffix("_bare")
+    words = _LAW_WORDS.get(stem, stem)
+    return words + ("" if name.endswith("_bare") else " + c₀") + " (95% band)"
+
+
 _SUPERSCRIPT = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
 
 
@@ -348,7 +359,7 @@ def _draw_cost_panel(ax, rax, curve: CurveResult, verdict, kind: str) -> None:
             stem = name.removesuffix("_bare")
             colour = style.LAW_COLOURS.get(stem, style.PALETTE["sky"])
             ls = style.LAW_STYLES.get(stem, "-")
-            ax.plot(pred.sizes, pred.median, ls, color=colour, lw=1.6, label=f"{name} law")
+            ax.plot(pred.sizes, pred.median, ls, color=colour, lw=1.6, label=_law_words(name))
             ax.fill_between(pred.sizes, pred.lower, pred.upper, color=colour, alpha=0.14,
                             lw=0)
             if ok:
@@ -418,7 +429,7 @@ def _comparison_figure(level: str, axis: str, group: Sequence[CurveAnalysis],
     height = 4.4 + 0.2 * n_rows
     fig, axes = plt.subplots(1, 2, figsize=(12, height), dpi=90)
     # Fixed margins (one draw, no tight bounding box); the legend gets its own band below.
-    fig.subplots_adjust(left=0.07, right=0.99, top=1 - 0.45 / height, wspace=0.2,
+    fig.subplots_adjust(left=0.07, right=0.99, top=1 - 0.7 / height, wspace=0.2,
                         bottom=(0.75 + 0.2 * n_rows) / height)
     for ax, kind in zip(axes, ("work", "time")):
         for a in group:
@@ -448,7 +459,7 @@ def _comparison_figure(level: str, axis: str, group: Sequence[CurveAnalysis],
                    ncol=min(3, len(labels)), bbox_to_anchor=(0.5, 0.0))
     fig.suptitle(f"{level} queries, {axis} axis — every family on one axis "
                  "(open triangles: censored, at least this)", fontsize=11, x=0.01,
-                 y=1 - 0.08 / height, ha="left", fontweight="bold")
+                 y=1 - 0.1 / height, ha="left", fontweight="bold")
     fig.savefig(path, facecolor="white")
     plt.close(fig)
 
@@ -544,7 +555,8 @@ def _compact(value: Any) -> str:
 
 # -- HTML -------------------------------------------------------------------------------------
 
-def _chip(verdict) -> str:
+def _chip(verdict, *, detail: bool = True) -> str:
+    """A growth class chip (the class always in words), its law, and optionally the evidence."""
     cls = "none" if verdict is None else verdict.growth
     cls = cls if cls in ("polynomial", "exponential", "inconclusive") else "none"
     word = "no verdict" if verdict is None else verdict.growth
@@ -552,14 +564,14 @@ def _chip(verdict) -> str:
     extra = ""
     if verdict is not None and verdict.growth == "inconclusive":
         if verdict.leaning:
-            extra += f" <span class=\"muted\">leans {_e(verdict.leaning)}</span>"
+            extra += f"<br><span class=\"muted\">leans {_e(verdict.leaning)}</span>"
         if verdict.next_sizes:
-            extra += (" <span class=\"muted\">measure next: "
+            extra += ("<br><span class=\"muted\">measure next: "
                       f"{_e(', '.join(str(int(s)) for s in verdict.next_sizes))}</span>")
-    law_html = f" <span class=\"law\">{_e(law)}</span>" if law else ""
+    law_html = f"<br><span class=\"law\">{_e(law)}</span>" if law else ""
     conf = ""
-    if verdict is not None:
-        conf = (f"<br><span class=\"muted\">confidence {_e(format_confidence(verdict))}; "
+    if verdict is not None and detail:
+        conf = (f"<br><span class=\"muted\">confidence {_e(format_confidence(verdict))}<br>"
                 f"{_e(format_range(verdict))}</span>")
     return f"<span class=\"chip {cls}\">{_e(word)}</span>{law_html}{extra}{conf}"
 
@@ -576,10 +588,9 @@ def _kv_table(items: Iterable[tuple[str, Any]]) -> str:
 
 
 def _verdict_table(analyses: Sequence[CurveAnalysis]) -> str:
-    head = ("<tr><th>family</th><th>level</th><th>method</th><th>axis</th><th>topology</th>"
-            "<th>other axis</th><th>axis grew</th><th>by work</th><th>by time</th>"
-            "<th>engine's prediction</th><th>theory</th><th>agreement</th><th>points</th>"
-            "<th>work unit</th></tr>")
+    head = ("<tr><th>family</th><th>level</th><th>method</th><th>axis (grew)</th>"
+            "<th>topology</th><th>by work</th><th>by time</th><th>cost formula</th>"
+            "<th>theory</th><th>agreement</th><th>points</th><th>work unit</th></tr>")
     body = []
     for a in analyses:
         s = a.curve.spec
@@ -588,16 +599,18 @@ def _verdict_table(analyses: Sequence[CurveAnalysis]) -> str:
         body.append(
             f"<tr id=\"row-{a.curve.index}\">"
             f"<td class=\"curve\"><a href=\"#curve-{a.curve.index}\">{_e(s.family)}</a></td>"
-            f"<td>{_e(s.level)}</td><td>{_e(s.method)}</td><td>{_e(s.axis)}</td>"
-            f"<td>{_e(s.topology)}</td><td>{_e(s.fixed)}</td><td>{_e(_axis_grew(a.curve))}</td>"
-            f"<td>{_chip(a.work)}</td><td>{_chip(a.time)}</td><td>{_chip(a.predicted)}</td>"
+            f"<td>{_e(s.level)}</td><td>{_e(s.method)}</td>"
+            f"<td>{_e(s.axis)}<br><span class=\"muted\">{_e(_axis_grew(a.curve))}; other "
+            f"axis {_e(s.fixed)}</span></td><td>{_e(s.topology)}</td>"
+            f"<td>{_chip(a.work)}</td><td>{_chip(a.time)}</td>"
+            f"<td>{_chip(a.predicted, detail=False)}</td>"
             f"<td>{_e(a.theory or '—')}</td>"
-            f"<td><span class=\"{agree_cls}\">{_e(a.agreement)}</span>"
+            f"<td class=\"note\"><span class=\"{agree_cls}\">{_e(a.agreement)}</span>"
             f"<br><span class=\"muted\">{_e(a.agreement_note)}</span></td>"
-            f"<td>{_e(_points_text(a.curve))}{flags}</td>"
+            f"<td class=\"note\">{_e(_points_text(a.curve))}{flags}</td>"
             f"<td>{_e(a.curve.work_unit or 'operations')}</td></tr>")
-    return (f"<table class=\"verdicts\" id=\"verdict-table\"><thead>{head}</thead>"
-            f"<tbody>{''.join(body)}</tbody></table>")
+    return (f"<div class=\"scroll\"><table class=\"verdicts\" id=\"verdict-table\">"
+            f"<thead>{head}</thead><tbody>{''.join(body)}</tbody></table></div>")
 
 
 def _spec_table(result: StudyResult) -> str:

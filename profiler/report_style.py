@@ -29,8 +29,10 @@ LAW_COLOURS = {
     "exponential": PALETTE["vermillion"],
     "stretched": PALETTE["purple"],
     "nlogn": PALETTE["green"],
+    "powerlog": PALETTE["sky"],
 }
-LAW_STYLES = {"power": "-", "exponential": "--", "stretched": "-.", "nlogn": ":"}
+LAW_STYLES = {"power": "-", "exponential": "--", "stretched": "-.", "nlogn": ":",
+              "powerlog": "-"}
 
 #: Order in which families take colours in comparison figures (yellow is left out: too pale on
 #: white for a line).
@@ -67,7 +69,9 @@ table { border-collapse:collapse; font-size:13px; }
 th, td { border-bottom:1px solid var(--rule); padding:5px 8px; text-align:left;
          vertical-align:top; }
 th { background:var(--band); font-weight:600; position:sticky; top:0; }
-table.verdicts td.curve { white-space:nowrap; font-family:"DejaVu Sans Mono", Menlo, monospace;
+div.scroll { overflow-x:auto; max-width:100%; }
+table.verdicts td.note { min-width:14em; max-width:22em; }
+table.verdicts td.curve { font-family:"DejaVu Sans Mono", Menlo, monospace;
                           font-size:12px; }
 .chip { display:inline-block; padding:1px 7px; border-radius:3px; font-weight:600; }
 .chip.polynomial { background:#cfe6f5; }

@@ -300,7 +300,7 @@ DEFAULT_CURVES: tuple[DefaultCurve, ...] = (
     DefaultCurve("bayesnet", (_A, _I), "exact", "graph", "chain", 2, 4, 512, 128),
     DefaultCurve("bayesnet", (_A, _I), "exact", "graph", "grid", 2, 4, 144, 64),
     DefaultCurve("bayesnet", (_A, _I), "exact", "mechanism", "chain", 8, 2, 48, 24),
-    DefaultCurve("bayesnet", (_A,), "sampling", "graph", "chain", 2, 4, 256, 96,
+    DefaultCurve("bayesnet", (_A, _I), "sampling", "graph", "chain", 2, 4, 256, 96,
                  params=(("n_samples", 500),)),
     # circuit: one pass, linear in edges, on both axes.
     DefaultCurve("circuit", (_A,), "exact", "graph", "balanced", 4, 4, 512, 128),
@@ -309,7 +309,7 @@ DEFAULT_CURVES: tuple[DefaultCurve, ...] = (
     DefaultCurve("neural_scm", (_A, _I, _C), "exact", "graph", "chain", 4, 2, 16, 16),
     DefaultCurve("neural_scm", (_A, _C), "exact", "mechanism", "chain", 4, 2, 96, 32,
                  quick=True),
-    DefaultCurve("neural_scm", (_A, _C), "sampling", "graph", "chain", 4, 2, 96, 32,
+    DefaultCurve("neural_scm", (_A, _I, _C), "sampling", "graph", "chain", 4, 2, 96, 32,
                  params=(("n_samples", 300),), quick=False),
     # linear_scm: closed-form Gaussian algebra, at most cubic in the variables, linear in-degree.
     DefaultCurve("linear_scm", (_A, _I, _C), "exact", "graph", "chain", 2, 4, 384, 128),

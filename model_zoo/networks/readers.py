@@ -136,6 +136,35 @@ def _assemble(label: str, text: str | None, names: list[str], states: dict, pare
     return net.validate(tolerance=1e-12)
 
 
+_READER_CLASS: list = []
+
+
+def _bif_reader_class():
+    """pgmpy's BIFReader with its two pyparsing grammars built once per process.
+
+    Building them (``Word(pp.unicode.alphanums ...)``) costs about a second per reader, more than
+    parsing any bundled file; the grammars do not depend on the text, so they are shared."""
+    if _READER_CLASS:
+        return _READER_CLASS[0]
+    from pgmpy.readwrite import BIFReader
+
+    grammars: dict[str, tuple] = {}
+
+    class _SharedGrammarBIFReader(BIFReader):
+        def get_variable_grammar(self):
+            if "variable" not in grammars:
+                grammars["variable"] = BIFReader.get_variable_grammar(self)
+            return grammars["variable"]
+
+        def get_probability_grammar(self):
+            if "probability" not in grammars:
+                grammars["probability"] = BIFReader.get_probability_grammar(self)
+            return grammars["probability"]
+
+    _READER_CLASS.append(_SharedGrammarBIFReader)
+    return _SharedGrammarBIFReader
+
+
 def _read_bif_text(text: str, label: str) -> DiscreteNetwork:
     if not text.strip():
         raise InputError(f"{label}: file is empty; expected a BIF network")
@@ -143,9 +172,7 @@ def _read_bif_text(text: str, label: str) -> DiscreteNetwork:
         raise InputError(f"{label}: no 'network' or 'variable' block; expected a BIF network")
     _check_braces(text, label)
     try:
-        from pgmpy.readwrite import BIFReader
-
-        reader = BIFReader(string=text)
+        reader = _bif_reader_class()(string=text)
         names, states = reader.variable_names, reader.variable_states
         parents, tables = reader.variable_parents, reader.variable_cpds
     except InputError:

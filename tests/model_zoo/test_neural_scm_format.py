@@ -112,3 +112,41 @@ def test_not_json_and_missing_npz_array(tmp_path, scm, family):
     doc["weights_file"] = "absent.npz"
     with pytest.raises(InputError, match="weights_file"):
         family.load(_write(tmp_path, doc, "m3.json"))
+
+
+def test_random_corruptions_load_or_raise_input_error(scm):
+    """Replacing any field of a valid document by junk (300 seeded cases) either loads or raises
+    InputError — never another exception."""
+    import random
+
+    from model_zoo.neural_scm import from_dict
+
+    base = to_dict(scm)
+
+    def paths(o, pre=()):
+        yield pre
+        items = o.items() if isinstance(o, dict) else enumerate(o) if isinstance(o, list) else ()
+        for k, v in items:
+            yield from paths(v, pre + (k,))
+
+    places = [p for p in paths(base) if p]
+    junk = [None, 0, -1, 2.5, "x", [], {}, [1], [[1]], True, {"a": 1}, [None], ["C0"], 1e308]
+    rnd = random.Random(0)
+    outcomes = {"loaded": 0, "rejected": 0}
+    for _ in range(300):
+        doc = copy.deepcopy(base)
+        place = rnd.choice(places)
+        holder = doc
+        for k in place[:-1]:
+            holder = holder[k]
+        if isinstance(holder, dict) and rnd.random() < 0.2:
+            del holder[place[-1]]
+        else:
+            holder[place[-1]] = rnd.choice(junk)
+        try:
+            from_dict(doc, where="fuzz.json")
+            outcomes["loaded"] += 1
+        except InputError as exc:
+            assert "\n" not in str(exc) and str(exc).startswith("fuzz.json")
+            outcomes["rejected"] += 1
+    assert outcomes["rejected"] > 100

@@ -127,8 +127,9 @@ def discrete_queries(draw):
     names = draw(st.lists(st.one_of(_plain, _names), min_size=3, max_size=6, unique=True))
     states = {v: tuple(draw(st.lists(st.one_of(_plain, _names), min_size=1, max_size=4,
                                      unique=True))) for v in names}
-    pick = lambda: draw(st.sampled_from(names))  # noqa: E731
-    assign = lambda vs: tuple((v, draw(st.integers(0, len(states[v]) - 1))) for v in vs)  # noqa
+
+    def assign(vs):
+        return tuple((v, draw(st.integers(0, len(states[v]) - 1))) for v in vs)
 
     def distinct(k):
         return draw(st.lists(st.sampled_from(names), min_size=k, max_size=k + 1, unique=True))
@@ -137,7 +138,6 @@ def discrete_queries(draw):
     target = assign(distinct(1))
     evidence = assign(draw(st.lists(st.sampled_from(names), max_size=3, unique=True)))
     intervention = () if level is Level.ASSOCIATIONAL else assign(distinct(1))
-    del pick
     return Query(level, target, evidence, intervention), states
 
 

@@ -7,17 +7,14 @@ right answer is known: a curve built from a known power law gives back its degre
 from __future__ import annotations
 
 import re
-import sys
-from pathlib import Path
 
 import pytest
 
-sys.path.insert(0, str(Path(__file__).parent))
-from synthetic_study import make_curve  # noqa: E402
+from tests.profiler.synthetic_study import make_curve, make_study
 
-from profiler import analysis  # noqa: E402
-from profiler.analysis import analyse_curve, analyse_study, format_growth  # noqa: E402
-from profiler.fitter import LawFit, Verdict  # noqa: E402
+from profiler import analysis
+from profiler.analysis import analyse_curve, analyse_study, format_growth
+from profiler.fitter import LawFit, Verdict
 
 SIZES = (4, 6, 8, 12, 16, 24, 32, 48, 64)
 EXP_SIZES = (2, 3, 4, 5, 6, 7, 8, 9, 10, 11)
@@ -114,8 +111,6 @@ def test_time_fit_receives_each_points_repeats(monkeypatch):
 
 
 def test_analyse_study_keeps_curve_order():
-    from synthetic_study import make_study
-
     study = make_study([make_curve(1, sizes=(4, 8)), make_curve(0, sizes=(4, 8))])
     assert [a.curve.index for a in analyse_study(study)] == [0, 1]
 
