@@ -262,7 +262,7 @@ class _Plan:
     final_subscripts: str
     final_batched: bool
     n_slots: int
-    graph: Any                 # interaction graph (networkx) the order was computed on
+    graph: dict                # interaction graph {node: neighbours} the order was computed on
     order: tuple[str, ...]
     width: int
     work: int                  # entries multiplied, counted from the actual einsum operands
@@ -290,15 +290,13 @@ def _subscripts(in_scopes, in_batched, out_scope, out_batched) -> str:
 
 def _build_plan(idx: _Index, target: str, ev_vars: tuple[str, ...],
                 do_vars: tuple[str, ...]) -> _Plan:
-    import networkx as nx
-
     obs = ev_vars + do_vars
     obs_col = {v: i for i, v in enumerate(obs)}
     cut = frozenset(do_vars)
     relevant = idx.relevant((target,) + obs, cut)
     factors: list[_Factor] = []
-    graph = nx.Graph()
-    graph.add_nodes_from(v for v in relevant if v not in obs_col)
+    # interaction graph of the sliced factors, as {node: neighbours} (cheaper than networkx)
+    graph: dict[str, set[str]] = {v: set() for v in relevant if v not in obs_col}
     for v in relevant:
         if v in cut:
             continue  # surgery: the intervened variable's CPT is replaced by a point mass
@@ -311,14 +309,16 @@ def _build_plan(idx: _Index, target: str, ev_vars: tuple[str, ...],
         free = tuple(scope[i] for i in free_axes)
         factors.append(_Factor(table, tuple(obs_col[scope[i]] for i in obs_axes), free,
                                bool(obs_axes)))
-        graph.add_edges_from((free[i], free[j]) for i in range(len(free))
-                             for j in range(i + 1, len(free)))
-    order, width = min_fill_order(graph, eliminate=[v for v in graph.nodes if v != target])
+        for u in free:
+            graph[u].update(free)
+    for u, nbrs in graph.items():
+        nbrs.discard(u)
+    order, width = min_fill_order(graph, eliminate=[v for v in graph if v != target])
 
     scopes = [f.scope for f in factors]
     batched = [f.batched for f in factors]
     alive = set(range(len(factors)))
-    mentions: dict[str, set[int]] = {v: set() for v in graph.nodes}
+    mentions: dict[str, set[int]] = {v: set() for v in graph}
     for i, s in enumerate(scopes):
         for v in s:
             mentions[v].add(i)
@@ -521,6 +521,9 @@ class BayesNetFamily(FamilyBase):
         CPT columns ~ (1 - floor) Dirichlet(alpha) + floor * uniform.
     reference_max_work : float, default 1e7
         Above this predicted work, :meth:`reference` returns None.
+    treewidth_lower_limit : int, default 300
+        :meth:`profile` adds ``treewidth_lower`` (from :mod:`model_zoo.treewidth`) only for
+        networks of at most this many variables (the bound costs seconds beyond).
     """
 
     name = "bayesnet"
@@ -729,8 +732,11 @@ class BayesNetFamily(FamilyBase):
         try:
             from model_zoo.treewidth import treewidth_bounds
         except ImportError:
-            pass
-        else:
+            treewidth_bounds = None
+        # The lower bound costs seconds on graphs of ~1000 nodes; a profile is asked for at
+        # every point of a study, so it is only added up to `treewidth_lower_limit` variables.
+        if treewidth_bounds is not None and len(net.variables) <= int(
+                self._p("treewidth_lower_limit", 300)):
             bounds = treewidth_bounds(moral)
             prof["treewidth_lower"] = float(bounds.lower)
             # Our min-fill order's width stays the upper bound the engine achieves; record the

@@ -16,6 +16,7 @@ induced width) and §9.4.3.2 (greedy orderings: min-fill, min-degree).
 from __future__ import annotations
 
 import heapq
+from collections import Counter
 from typing import Iterable, Mapping, Sequence
 
 import networkx as nx
@@ -89,9 +90,9 @@ def min_fill_order(graph: nx.Graph | Mapping[str, Iterable[str]], *,
 
     Notes
     -----
-    Scores are kept in a heap with lazy invalidation; after eliminating z only z's neighbours
-    (and, when fill edges were added, their neighbours) are re-scored, so a step costs
-    O(sum over affected nodes of deg^2 + log n) instead of re-scoring the whole graph.
+    Fill counts are updated by deltas (removing z, then adding each fill edge (a, b) changes
+    only a, b and their common neighbours) and kept in a heap with lazy invalidation, so a step
+    costs O(deg(z) * deg + fill(z) * deg + log n) set work instead of re-scoring the graph.
 
     References
     ----------
@@ -109,10 +110,13 @@ def min_fill_order(graph: nx.Graph | Mapping[str, Iterable[str]], *,
     if unknown:
         raise ValueError(f"min_fill_order: nodes to eliminate are not in the graph: "
                          f"{sorted(map(str, unknown))[:5]}")
+    # fill[u] is kept exact for every node still in the graph (also the kept ones, whose
+    # neighbourhoods change too), updated by deltas as edges appear and z disappears.
+    fill = {u: _fill(adj, u) for u in adj}
     score: dict[str, tuple[int, int]] = {}
     heap: list[tuple[int, int, str]] = []
     for u in todo:
-        s = (_fill(adj, u), len(adj[u]))
+        s = (fill[u], len(adj[u]))
         score[u] = s
         heap.append((s[0], s[1], u))
     heapq.heapify(heap)
@@ -124,26 +128,35 @@ def min_fill_order(graph: nx.Graph | Mapping[str, Iterable[str]], *,
             continue  # stale entry: z was re-scored or already eliminated
         todo.discard(z)
         nbrs = adj.pop(z)
+        del fill[z]
         order.append(z)
         width = max(width, len(nbrs))
-        affected = set(nbrs)
+        for u in nbrs:
+            au = adj[u]
+            au.discard(z)
+            # pairs (z, w) of u's neighbourhood that were missing disappear with z
+            fill[u] -= len(au - nbrs)
+        touched = set(nbrs)
+        drop: Counter = Counter()
         nb = list(nbrs)
-        for a in nb:
-            adj[a].discard(z)
-        added = False
         for i, a in enumerate(nb):
-            na = adj[a]
+            aa = adj[a]
             for b in nb[i + 1:]:
-                if b not in na:
-                    na.add(b)
-                    adj[b].add(a)
-                    added = True
-        if added:
-            for a in nb:
-                affected |= adj[a]
-        for u in affected:
+                if b in aa:
+                    continue
+                ab = adj[b]
+                common = aa & ab
+                drop.update(common)           # (a, b) no longer missing for common neighbours
+                fill[a] += len(aa - ab)       # new missing pairs (b, x), x in N(a) \ N(b)
+                fill[b] += len(ab - aa)
+                aa.add(b)
+                ab.add(a)
+        for w, k in drop.items():
+            fill[w] -= k
+        touched.update(drop)
+        for u in touched:
             if u in todo:
-                s = (_fill(adj, u), len(adj[u]))
+                s = (fill[u], len(adj[u]))
                 if s != score[u]:
                     score[u] = s
                     heapq.heappush(heap, (s[0], s[1], u))
@@ -191,13 +204,11 @@ def elimination_cost(graph: nx.Graph | Mapping[str, Iterable[str]], order: Seque
             size *= int(cards[v])
         total += size
         largest = max(largest, size)
-        nb = list(nbrs)
-        for a in nb:
-            adj[a].discard(z)
-        for i, a in enumerate(nb):
-            for b in nb[i + 1:]:
-                adj[a].add(b)
-                adj[b].add(a)
+        for a in nbrs:
+            na = adj[a]
+            na.discard(z)
+            na |= nbrs      # connect the neighbours (set union runs in C)
+            na.discard(a)
     if adj:
         size = 1
         for v in adj:

@@ -26,7 +26,8 @@ from profiler.errors import FitError
 from profiler.records import CurveResult, Point, StudyResult
 
 __all__ = ["CurveAnalysis", "analyse_curve", "analyse_study", "MIN_POINTS", "fit_series",
-           "CAUTION", "competing_laws", "format_growth", "format_law", "format_confidence", "format_range"]
+           "CAUTION", "competing_laws", "format_growth", "format_law", "format_confidence",
+           "format_range"]
 
 #: The sentence every report, plan and claim check carries about what a growth class means.
 CAUTION = ("Growth classes are empirical evidence on the measured range of sizes, not proofs; "
@@ -178,7 +179,7 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
     >>> spec = CurveSpec("bayesnet", "associational", "exact", "graph", "chain", 2)
     >>> pts = tuple(Point("s", 0, "bayesnet", "associational", "exact", "graph", "chain", 2, n,
     ...                   "ok", seconds_median=1e-4 * n, work=8.0 * n, predicted_work=8.0 * n)
-    ...             for n in (4, 8, 16, 32, 64))
+    ...             for n in (4, 6, 8, 12, 16, 24, 32, 48, 64))
     >>> analyse_curve(CurveResult(0, spec, pts, theory="polynomial")).work.growth
     'polynomial'
 
@@ -231,14 +232,42 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
                          flags=tuple(flags))
 
 
+#: The last few studies analysed. Records are frozen and the fits seeded, so a study with the
+#: same points always gets the same analyses; `infercost run` writes the report and prints the
+#: terminal table from one result, and this keeps it from fitting every curve twice.
+_RECENT: dict[tuple, list[CurveAnalysis]] = {}
+_RECENT_MAX = 4
+
+
+def _study_key(result: StudyResult, seed: int) -> tuple:
+    # What a fit reads of each point (profiles hold dicts, so points themselves do not hash).
+    return (result.study_id, seed, tuple(
+        (c.index, c.spec, c.theory, c.cut_by_budget, tuple(
+            (p.size, p.status, p.seconds_median, p.work, p.predicted_work, p.finished_at,
+             p.repeat_seconds) for p in c.points)) for c in result.curves))
+
+
 def analyse_study(result: StudyResult, *, seed: int = 0) -> list[CurveAnalysis]:
     """:func:`analyse_curve` for every curve of a study, in curve order.
 
     Notes
     -----
-    O(number of curves) fits.
+    O(number of curves) fits; a study analysed moments ago (same id and the very same points)
+    is answered from a small cache of the last few.
     """
-    return [analyse_curve(c, seed=seed) for c in sorted(result.curves, key=lambda c: c.index)]
+    try:
+        key = _study_key(result, seed)
+        hash(key)
+    except TypeError:          # a point with an unhashable profile value: no caching
+        key = None
+    if key is not None and key in _RECENT:
+        return list(_RECENT[key])
+    out = [analyse_curve(c, seed=seed) for c in sorted(result.curves, key=lambda c: c.index)]
+    if key is not None:
+        while len(_RECENT) >= _RECENT_MAX:
+            _RECENT.pop(next(iter(_RECENT)))
+        _RECENT[key] = out
+    return list(out)
 
 
 def competing_laws(verdict) -> list[str]:
@@ -304,11 +333,11 @@ def format_law(verdict) -> str:
     return ""
 
 
-def format_growth(verdict) -> str:
+def format_growth(verdict, *, next_sizes: bool = True) -> str:
     """The growth class in words and symbols: ``polynomial, n^1.02 [0.98, 1.06]``.
 
-    ``inconclusive`` verdicts say which way they lean and which sizes would settle them; a
-    missing verdict reads ``no verdict``.
+    ``inconclusive`` verdicts say which way they lean and (with ``next_sizes``) which sizes
+    would settle them; a missing verdict reads ``no verdict``.
     """
     if verdict is None:
         return "no verdict"
@@ -320,7 +349,7 @@ def format_growth(verdict) -> str:
         elif verdict.degree is not None and verdict.base is not None:
             text += (f" (n^{_fixed(verdict.degree)}{_ci(verdict.degree_ci)} or "
                      f"{_fixed(verdict.base)}^n{_ci(verdict.base_ci)})")
-        if verdict.next_sizes:
+        if verdict.next_sizes and next_sizes:
             text += "; measure next: " + ", ".join(str(int(s)) for s in verdict.next_sizes)
         return text
     return f"{verdict.growth}, {law}" if law else verdict.growth

@@ -326,7 +326,10 @@ def _parse_given(family: Any, instance: Any, texts: Sequence[str], where: str) -
     ctx = _query_context(family, instance)
     out = []
     for text in texts:
-        q = parse_query(text, **ctx)
+        try:
+            q = parse_query(text, **ctx)
+        except InputError as exc:
+            raise InputError(f"{where}: {exc}") from exc
         if q.level not in family.levels:
             can = ", ".join(lv.value for lv in Level if lv in family.levels)
             raise UnsupportedQuery(
@@ -368,8 +371,9 @@ def _time_one(family: Any, instance: Any, q: Query, method: str, first_seconds: 
             family.answer(instance, q, method=method)
             best = min(best, time.perf_counter() - t0)
         return best, None, None
-    t = time_queries(family, instance, [q], method=method, min_repeat_seconds=0.01,
-                     min_repeats=5, max_repeats=10)
+    # short series per query (the audit is interactive); the median is over queries anyway
+    t = time_queries(family, instance, [q], method=method, min_repeat_seconds=0.005,
+                     min_repeats=3, max_repeats=7)
     return float(t.seconds_median), float(t.work), float(t.peak_bytes)
 
 
@@ -791,7 +795,7 @@ def audit_instance(family: Any, instance: Any, *, name: str | None = None,
                     pass
         levels[lv.value] = entry
         if pb_known and max(pb_known) > cap_bytes:
-            entry["skipped"] = (f"predicted peak memory {max(pb_known) / _MIB:,.0f} MiB exceeds "
+            entry["skipped"] = (f"predicted peak memory {_fmt_bytes(max(pb_known))} exceeds "
                                 f"the cap of {memory_mb:g} MiB; not run")
             for text, q in items:
                 rows_out.append(_row(family, instance, text, q, None))
@@ -822,8 +826,12 @@ def audit_instance(family: Any, instance: Any, *, name: str | None = None,
 
     opts: dict[str, Any] = {}
     if options:
-        opts["sampling"] = sampling if sampling else {
-            "skipped": f"family {family.name!r} has no sampling engine"}
+        if sampling:
+            opts["sampling"] = sampling
+        elif "sampling" not in family.methods:
+            opts["sampling"] = {"skipped": f"family {family.name!r} has no sampling engine"}
+        else:
+            opts["sampling"] = {"skipped": "not priced: no level was measured"}
         if _network(instance) is not None:
             opts["compile"] = _compile_option(instance, kept, levels, memory_mb=memory_mb,
                                               timeout_s=point_timeout_s, isolate=isolate,

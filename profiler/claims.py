@@ -41,7 +41,7 @@ from __future__ import annotations
 import math
 import re
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Sequence
 
@@ -51,7 +51,8 @@ from profiler.errors import InputError
 from profiler.records import CurveResult, CurveSpec, StudyResult
 
 __all__ = ["Claim", "ClaimVerdict", "load_claims", "claims_from_list", "judge_claims",
-           "missing_curves", "check_claims", "check_claims_file", "exit_code", "format_claims", "STATUSES"]
+           "missing_curves", "check_claims", "check_claims_file", "exit_code", "format_claims",
+           "STATUSES"]
 
 STATUSES = ("holds", "fails", "undecided")
 _LEVELS = ("associational", "interventional", "counterfactual")
@@ -235,7 +236,7 @@ def _results(result: StudyResult | Sequence[StudyResult] | None) -> list[StudyRe
 
 
 def _find_curve(claim: Claim, results: Sequence[StudyResult]) -> CurveResult | None:
-    """The best-covered matching curve (most ok points, then the largest size), latest study first."""
+    """The best-covered matching curve (most ok points, then largest size); ties: latest study."""
     found = [c for r in reversed(results) for c in r.curves if claim.matches(c.spec)]
     if not found:
         return None
@@ -307,9 +308,9 @@ def _judge_seconds(size: float, seconds: float, v) -> tuple[str, str, dict[str, 
     return "undecided", band + f", straddling {seconds:g} s", info
 
 
-def _evidence_text(v) -> str:
-    lam = f" (Λ = {v.lambda_:.1f})"
-    return f"{format_growth(v)} over {format_range(v)}{lam}"
+def _evidence_text(v, by: str) -> str:
+    return (f"{format_growth(v, next_sizes=False)} over {format_range(v)} "
+            f"(Λ = {v.lambda_:.1f}) by {by}")
 
 
 def _claimed_words(c: Claim) -> str:
@@ -317,7 +318,7 @@ def _claimed_words(c: Claim) -> str:
     if c.growth:
         parts.append(c.growth)
     if c.max_degree is not None:
-        parts.append(f"of degree at most {c.max_degree:g}")
+        parts.append(("" if c.growth else "polynomial ") + f"of degree at most {c.max_degree:g}")
     if c.min_base is not None:
         parts.append(f"exponential with base at least {c.min_base:g}")
     if c.max_seconds_at is not None:
@@ -381,14 +382,18 @@ def _judge_one(claim: Claim, results: Sequence[StudyResult],
         "flags": list(a.flags), "theory": a.theory, "agreement": a.agreement,
     }
     if main is not None:
-        measured = f"measured {_evidence_text(main)} by {evidence['by']}"
+        measured = f"measured {_evidence_text(main, evidence['by'])}"
     else:
         measured = "no verdict could be fitted (" + ("; ".join(a.flags) or "too few points") + ")"
     decisive = [c for c in checks if c["status"] == status] or checks
     why = "; ".join(c["reason"] for c in decisive)
+    settle = ""
+    if main is not None and main.growth == "inconclusive" and main.next_sizes:
+        settle = (" Sizes that would settle the class: "
+                  + ", ".join(str(int(n)) for n in main.next_sizes) + ".")
     sentence = (f"{head} {status}: {claim.curve_words()} was claimed {_claimed_words(claim)}; "
                 f"{measured}" + (f" — {why}" if why and not why.startswith("measured") else "")
-                + f".{quote}")
+                + f".{settle}{quote}")
     return ClaimVerdict(claim, status, tuple(checks), key, evidence, sentence)
 
 
@@ -507,7 +512,7 @@ def check_claims_file(path: str | Path, *, store: str | Path = "reports/infercos
 
 
 def exit_code(verdicts: Sequence[ClaimVerdict], *, strict: bool = False) -> int:
-    """0 when nothing fails (every claim holds, or — unless ``strict`` — is undecided), else 1."""
+    """0 when nothing fails (claims hold, or unless ``strict`` are undecided), else 1."""
     if any(v.status == "fails" for v in verdicts):
         return 1
     if strict and any(v.status != "holds" for v in verdicts):

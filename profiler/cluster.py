@@ -2,8 +2,8 @@
 
 ``infercost run STUDY.toml --dask tcp://HOST:8786`` connects to an existing ``distributed``
 scheduler; ``--dask local:N`` starts a :class:`distributed.LocalCluster` of ``N`` single-threaded
-worker processes on the loopback interface (scheduler, nannies and workers all bind 127.0.0.1;
-no dashboard), so nothing listens on another address unless the user points at a cluster of
+worker processes on the loopback interface (scheduler, nannies, workers and their HTTP status
+servers all bind 127.0.0.1 on free ports), so nothing listens on another address unless the user points at a cluster of
 their own.
 
 How a curve runs
@@ -54,7 +54,7 @@ from typing import Any, Callable, Iterator, Mapping, Sequence
 from profiler.errors import InputError, WorkerError
 from profiler.records import Point, StudySpec
 
-__all__ = ["parse_address", "open_client", "run_curves_dask", "DaskRunSummary",
+__all__ = ["parse_address", "open_client", "run_curves_dask", "store_curves_dask", "DaskRunSummary",
            "normalise_times", "machine_of", "calibration_seconds", "DEFAULT_MAX_RETRIES"]
 
 #: Resubmissions of one curve after its worker died, before the curve is given up for this run.
@@ -100,7 +100,7 @@ def open_client(address: str, *, timeout_s: float = 30.0) -> Iterator[Any]:
     """A ``distributed.Client`` for a ``--dask`` value, closed (with its local cluster) on exit.
 
     ``local:N`` starts ``LocalCluster(n_workers=N, threads_per_worker=1, processes=True)`` bound
-    to 127.0.0.1 with no dashboard and no worker memory limit (the harness enforces the caps;
+    to 127.0.0.1 (its small HTTP status servers too, on free ports) and no worker memory limit (the harness enforces the caps;
     a nanny restarting a worker for its children's memory would only lose a curve). The
     scheduler is told not to retry a task whose worker died (see the module docstring).
 
@@ -121,7 +121,8 @@ def open_client(address: str, *, timeout_s: float = 30.0) -> Iterator[Any]:
             with dask.config.set({"distributed.scheduler.allowed-failures": 0}):
                 cluster = LocalCluster(n_workers=int(where), threads_per_worker=1,
                                        processes=True, host="127.0.0.1", scheduler_port=0,
-                                       dashboard_address=None, memory_limit=0,
+                                       dashboard_address="127.0.0.1:0",
+                                       worker_dashboard_address="127.0.0.1:0", memory_limit=0,
                                        silence_logs=logging.ERROR)
                 client = Client(cluster, timeout=timeout_s)
         else:
@@ -495,6 +496,25 @@ def run_curves_dask(address: str | None, ctx: Any, spec: StudySpec,
                           lost_curves=tuple(lost), n_duplicates_dropped=counts["dup"],
                           dask_workers=tuple(sorted(dask_workers)),
                           seconds=time.monotonic() - t0, retried=retried)
+
+
+def store_curves_dask(address: str | None, ctx: Any, spec: StudySpec,
+                      stored: Mapping[int, Sequence[Point]], *, store: Any, study_id: str,
+                      emit: Callable[[dict], None] | None = None, client: Any = None,
+                      **options: Any) -> DaskRunSummary:
+    """The runner's Dask path: :func:`run_curves_dask` writing into an open results store.
+
+    Each point is stored (one transaction) the moment it reaches the client, each curve's end
+    and each worker's environment as the runner's local path records them
+    (:func:`profiler.runner._store_outcome`, :meth:`profiler.store.Store.add_worker`). ``emit``
+    receives the progress events. ``options`` go to :func:`run_curves_dask`.
+    """
+    from profiler.runner import _store_outcome
+
+    return run_curves_dask(address, ctx, spec, stored, on_point=store.add_point,
+                           on_outcome=lambda o: _store_outcome(store, study_id, spec, o),
+                           on_worker=lambda w, env: store.add_worker(study_id, w, env),
+                           on_event=emit, client=client, **options)
 
 
 # ============================================================================ times across machines

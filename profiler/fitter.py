@@ -270,23 +270,26 @@ def _exp_starts(f, y):
 
 
 def _stretched_core(th, f, jac):
-    beta, gamma = th[:, 1:2], th[:, 2:3]
+    # Box-Cox form a + B (n^gamma - 1) / gamma, i.e. beta = B / gamma: B is the log-log slope at
+    # n = 1 and the (B, gamma) valley is far less curved than (beta, gamma), so fits converge fast.
+    slope, gamma = th[:, 1:2], th[:, 2:3]
     ng = np.exp(gamma * f["u"])
-    h = th[:, :1] + beta * ng
+    bc = (ng - 1.0) / gamma
+    h = th[:, :1] + slope * bc
     if not jac:
         return h, None
     J = np.empty(h.shape + (3,))
     J[..., 0] = 1.0
-    J[..., 1] = ng
-    J[..., 2] = beta * ng * f["u"]
+    J[..., 1] = bc
+    J[..., 2] = slope * (ng * f["u"] - bc) / gamma
     return h, J
 
 
 def _stretched_starts(f, y):
     rows = []
-    for gamma in (1.0, 0.6, 0.35):
-        for a, beta in _lines(np.exp(gamma * f["u"]), y):
-            rows.append((a, max(beta, 1e-6), gamma))
+    for gamma in (1.0, 0.5, 0.3):
+        for a, slope in _lines((np.exp(gamma * f["u"]) - 1.0) / gamma, y):
+            rows.append((a, max(slope, 1e-6), gamma))
     return np.array(rows)
 
 
@@ -298,7 +301,7 @@ POWERLOG = Law("powerlog", "polynomial", ("log_a", "k", "m"), _powerlog_core, (-
                (INF, 20.0, 4.0), _powerlog_starts, {"degree": 1})
 EXPONENTIAL = Law("exponential", "exponential", ("log_a", "ln_b"), _exp_core, (-INF, -INF),
                   (INF, INF), _exp_starts, {"base": 1})
-STRETCHED = Law("stretched", "exponential", ("log_a", "beta", "gamma"), _stretched_core,
+STRETCHED = Law("stretched", "exponential", ("log_a", "slope", "gamma"), _stretched_core,
                 (-INF, 1e-9, GAMMA_MIN), (INF, INF, 1.0), _stretched_starts, {"gamma": 2})
 
 #: The laws fitted by default (each with overhead c0 >= 0).
@@ -504,6 +507,14 @@ def _bounds(law: Law, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.array(lo, dtype=float), np.array(hi, dtype=float)
 
 
+_LOG_SQRT_2PI = 0.5 * math.log(2 * math.pi)
+
+
+def _mills(z: np.ndarray) -> np.ndarray:
+    """phi(z) / Phi(z), computed in logs so it stays finite far in the lower tail."""
+    return np.exp(-0.5 * z * z - _LOG_SQRT_2PI - special.log_ndtr(z))
+
+
 def _objective(law, theta, data, ys, sigma2):
     """Negative log-likelihood (B,) at noise variance sigma2 (B,) for ln costs ys (B, N)."""
     mu, _ = law.mu(theta, data.feats)
@@ -565,15 +576,17 @@ def _solve(law: Law, data: _Data, theta0: np.ndarray, ys: np.ndarray | None = No
         if censored:
             s = np.sqrt(sigma2)[:, None]
             z = (mu - ys) / s                                   # for censored columns
-            mills = np.exp(stats.norm.logpdf(z) - special.log_ndtr(z))
+            mills = _mills(z)
             grad_pt = np.where(obs, r / sigma2[:, None], mills / s)
             w = np.where(obs, 1.0 / sigma2[:, None], mills * (z + mills) / sigma2[:, None])
             w = np.maximum(w, 1e-12)
-            A = np.einsum("bnp,bn,bnq->bpq", J, w, J)
-            g = np.einsum("bnp,bn->bp", J, grad_pt)
+            Jt = np.swapaxes(J, 1, 2)
+            A = Jt @ (J * w[..., None])
+            g = (Jt @ grad_pt[..., None])[..., 0]
         else:
-            A = np.einsum("bnp,bnq->bpq", J, J)
-            g = np.einsum("bnp,bn->bp", J, r)
+            Jt = np.swapaxes(J, 1, 2)
+            A = Jt @ J
+            g = (Jt @ r[..., None])[..., 0]
         D = np.diagonal(A, axis1=1, axis2=2).copy()
         D = np.maximum(D, 1e-12 * (1.0 + D.max(axis=1, keepdims=True)))
         D[:, ~free] = 1.0
@@ -600,7 +613,7 @@ def _solve(law: Law, data: _Data, theta0: np.ndarray, ys: np.ndarray | None = No
             rr = ys - mu_c
             s = np.sqrt(sigma2)[:, None]
             a = rr / s                                          # (cap - mu) / s
-            tail = np.exp(stats.norm.logpdf(a) - special.log_ndtr(-a))
+            tail = _mills(-a)
             extra = np.sum(np.where(data.cens, sigma2[:, None] * (1.0 + a * tail), 0.0), axis=1)
             new_s2 = np.maximum((np.sum(np.where(obs, rr * rr, 0.0), axis=1) + extra) / data.n,
                                 floor2)
@@ -641,13 +654,31 @@ def _start_matrix(law: Law, data: _Data) -> np.ndarray:
     return np.array(rows)
 
 
-def _fit_law(law: Law, data: _Data, starts: np.ndarray | None = None) -> tuple[np.ndarray, float, float]:
-    """Best of several starting points: (theta, loglik, ML sigma)."""
-    th0 = _start_matrix(law, data) if starts is None else np.atleast_2d(starts)
-    res = _solve(law, data, th0)
+def _fit_law(law: Law, data: _Data, extra: Sequence[np.ndarray] = (),
+             max_iter: int = 60) -> tuple[np.ndarray, float, float]:
+    """Best of several starting points (the law's own plus ``extra``): (theta, loglik, ML sigma)."""
+    th0 = _start_matrix(law, data)
+    if len(extra):
+        th0 = np.vstack([th0] + [np.atleast_2d(e) for e in extra])
+    res = _solve(law, data, th0, max_iter=max_iter)
     ll = np.where(np.isfinite(res.loglik), res.loglik, -np.inf)
     i = int(np.argmax(ll))
     return res.theta[i], float(ll[i]), float(res.sigma[i])
+
+
+def _warm_starts(law: Law, raw: dict) -> list[np.ndarray]:
+    """Starting points for the 4-parameter laws from the fitted 3-parameter ones."""
+    out = []
+    if law is POWERLOG and POWER.name in raw:
+        out.append(np.append(raw[POWER.name][1], 0.0))
+    if law is STRETCHED:
+        if EXPONENTIAL.name in raw:
+            g, a, s = raw[EXPONENTIAL.name][1]
+            out.append(np.array([g, a + s, max(s, 1e-6), 1.0]))   # h = a + s n at gamma = 1
+        if POWER.name in raw:
+            g, a, k = raw[POWER.name][1]
+            out.append(np.array([g, a, max(k, 1e-6), GAMMA_MIN]))  # ~ a + k ln n
+    return out
 
 
 def _information(law: Law, theta: np.ndarray, data: _Data, sigma: float) -> np.ndarray:
@@ -658,7 +689,7 @@ def _information(law: Law, theta: np.ndarray, data: _Data, sigma: float) -> np.n
     w = np.full(data.n, 1.0 / s2)
     if data.cens.any():
         z = (mu - data.y) / sigma
-        mills = np.exp(stats.norm.logpdf(z) - special.log_ndtr(z))
+        mills = _mills(z)
         w = np.where(data.cens, np.maximum(mills * (z + mills), 1e-12) / s2, w)
     return J.T @ (w[:, None] * J)
 
@@ -1003,11 +1034,10 @@ def fit_growth(sizes, costs, censored=None, *, repeats=None, laws: Sequence[Law]
     exp4 = next((l for l in laws if l.family == "exponential" and "gamma" in l.quantity), None)
 
     raw: dict[str, tuple[Law, np.ndarray, float, float]] = {}
-    for law in laws:
+    for law in sorted(laws, key=lambda l: l.n_params):     # 3-parameter fits seed the 4s
         if law.n_params >= N:
             continue
-        theta, ll, sig = _fit_law(law, data)
-        raw[law.name] = (law, theta, ll, sig)
+        raw[law.name] = (law,) + _fit_law(law, data, _warm_starts(law, raw))
     # Bare variants (c0 = 0) of the two 3-parameter representatives: is c0 needed? (AICc)
     for law in (poly3, exp3):
         if law.overhead:

@@ -1097,6 +1097,10 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
             if stop is not None and stop.is_set():
                 reason = "stopped"
                 break
+            if budget is not None and driver.worker is None and budget() < max(0.5, 0.1 * cap):
+                # Not even a worker start fits: stop before paying for one.
+                reason, cut = "budget", True
+                break
             try:
                 size = sched.next_size(known_history(), realize=driver.realize)
             except _RealizeFailed as exc:

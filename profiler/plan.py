@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import math
 import tomllib
-from dataclasses import asdict, dataclass, field, fields, replace
+from dataclasses import asdict, dataclass, fields
 from pathlib import Path
 from typing import Any, Sequence
 
@@ -684,7 +684,8 @@ def format_plan(plan: Plan) -> str:
         lines.append(f"No estimate: {plan.fits_note}")
     else:
         lines += [f"Per query (95% prediction interval): {_iv(e.seconds, ' s')}; work "
-                  f"{_iv(e.work)} {e.work_unit}; peak memory {_iv(e.peak_bytes and e.peak_bytes.scaled(2**-20), ' MB')}",
+                  f"{_iv(e.work)} {e.work_unit}; peak memory "
+                  f"{_iv(e.peak_bytes and e.peak_bytes.scaled(2**-20), ' MB')}",
                   f"  growth by time: {e.growth}; curves: {', '.join(e.curves)}",
                   f"Total: {_iv(plan.total_core_seconds, ' core-s')}; wall on {w.cores} "
                   f"core(s): {_duration(plan.wall_seconds.median)} "
@@ -705,7 +706,8 @@ def format_plan(plan: Plan) -> str:
                      "target):")
         for r in plan.ranking:
             s = r["seconds_per_query"]
-            cost = "—" if s is None else f"{s['median']:.3g} s [{s['lower']:.3g}, {s['upper']:.3g}]"
+            cost = "—" if s is None else \
+                f"{s['median']:.3g} s [{s['lower']:.3g}, {s['upper']:.3g}]"
             rank = f"{r['rank']}." if r["rank"] else "-"
             lines.append(f"  {rank} {r['family']}: {cost}  {r['growth']}"
                          + (f"  ({r['note']})" if r["note"] else ""))

@@ -56,8 +56,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Iterable, Sequence
 
-from profiler.analysis import (CAUTION, CurveAnalysis, competing_laws, analyse_study, format_confidence, format_growth,
-                               format_law, format_range)
+from profiler.analysis import (CAUTION, CurveAnalysis, analyse_study, competing_laws,
+                               format_confidence, format_growth, format_law, format_range)
 from profiler.errors import InputError
 from profiler.records import CurveResult, StudyResult, curve_label
 from profiler import report_style as style
@@ -322,6 +322,12 @@ def _log_y(ax) -> None:
     ax.yaxis.set_minor_locator(NullLocator())
 
 
+def _wrap(text: str, width: int = 72) -> str:
+    import textwrap
+
+    return "\n".join(textwrap.wrap(text, width)) or text
+
+
 def _draw_cost_panel(ax, rax, curve: CurveResult, verdict, kind: str) -> None:
     import numpy as np
 
@@ -386,10 +392,12 @@ def _draw_cost_panel(ax, rax, curve: CurveResult, verdict, kind: str) -> None:
     rax.set_xlabel(_size_label(curve))
     if kind == "work":
         ax.set_ylabel(_work_label(curve.work_unit))
-        ax.set_title(f"by work — {format_growth(verdict)}", fontsize=10, loc="left")
+        ax.set_title(_wrap(f"by work — {format_growth(verdict, next_sizes=False)}"),
+                     fontsize=10, loc="left")
     else:
         ax.set_ylabel("seconds per query")
-        ax.set_title(f"by time — {format_growth(verdict)}", fontsize=10, loc="left")
+        ax.set_title(_wrap(f"by time — {format_growth(verdict, next_sizes=False)}"),
+                     fontsize=10, loc="left")
     handles, labels = ax.get_legend_handles_labels()
     if handles:
         ax.legend(fontsize=7, frameon=False, loc="upper left")
@@ -404,7 +412,7 @@ def _curve_figure(a: CurveAnalysis, path: Path) -> None:
     fig = plt.figure(figsize=(12, 5.4), dpi=90)
     # Fixed margins instead of a tight bounding box: one draw per figure instead of two.
     grid = fig.add_gridspec(2, 2, height_ratios=(3.2, 1), hspace=0.08, wspace=0.2,
-                            left=0.07, right=0.99, top=0.88, bottom=0.1)
+                            left=0.07, right=0.99, top=0.85, bottom=0.1)
     for col, (kind, verdict) in enumerate((("work", a.work), ("time", a.time))):
         ax = fig.add_subplot(grid[0, col])
         rax = fig.add_subplot(grid[1, col], sharex=ax)
@@ -438,7 +446,8 @@ def _comparison_figure(level: str, axis: str, group: Sequence[CurveAnalysis],
             colour = style.family_colour(families.index(s.family))
             marker = style.MARKERS[topologies.index(s.topology) % len(style.MARKERS)]
             ls = style.LINESTYLES.get(s.method, ":")
-            label = f"{s.family} · {s.method} · {s.topology} @{s.fixed}"
+            extra = "".join(f" [{k}={v}]" for k, v in s.params if k != "n_samples")
+            label = f"{s.family}{extra} · {s.method} · {s.topology} @{s.fixed}"
             if ok:
                 ax.plot([o[0] for o in ok], [o[1] for o in ok], ls=ls, marker=marker, ms=4,
                         color=colour, lw=1.3, label=label if kind == "work" else None)
@@ -446,6 +455,9 @@ def _comparison_figure(level: str, axis: str, group: Sequence[CurveAnalysis],
                 ax.scatter([c[0] for c in cens], [c[1] for c in cens], marker="^", s=45,
                            facecolors="white", edgecolors=colour, zorder=5)
         _log_y(ax)
+        sizes = [p.size for a in group for p in a.curve.points if p.size > 0]
+        if sizes and max(sizes) / min(sizes) >= 20:
+            ax.set_xscale("log")   # curves of very different ranges share the axis
         ax.grid(True, color="#e3e3e3", lw=0.6)
         ax.spines[["top", "right"]].set_visible(False)
         ax.set_xlabel("graph size n (endogenous variables)" if axis == "graph"
@@ -508,7 +520,7 @@ def _question(result: StudyResult) -> str:
 
 
 def summary_markdown(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> str:
-    """summary.md: the question, the verdict table, which knob each mechanism axis grew, the caution."""
+    """summary.md: the question, the verdict table, the mechanism knobs, the caution."""
     spec = result.spec
     lines = [f"# infercost study `{_md(spec.name)}`", "",
              f"Study id `{_md(result.study_id)}`; {len(analyses)} curves.", "",
@@ -516,7 +528,8 @@ def summary_markdown(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> 
     if spec.description:
         lines += [_md(spec.description), ""]
     lines += [f"> **Caution.** {CAUTION}", "",
-              "| curve | grows | by work | by time | confidence | theory | agreement | points | flags |",
+              "| curve | grows | by work | by time | confidence | theory | agreement | points "
+              "| flags |",
               "| --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
     for a in analyses:
         main = a.work if a.work is not None else a.time
@@ -538,12 +551,18 @@ def summary_markdown(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> 
         lines += [f"- `{_md(a.key)}`: {_md(a.agreement_note)}" for a in notes]
     env = result.environment
     lines += ["", "## Environment", ""]
-    for key in ("cpu", "cores", "python", "numpy", "blas", "git_revision", "platform"):
+    for key in ("host", "os", "cpu", "cores", "memory_bytes", "python", "blas", "git",
+                "threads", "seed", "calibration"):
         if key in env:
             lines.append(f"- {key}: {_md(_compact(env[key]))}")
+    packages = env.get("packages")
+    if isinstance(packages, dict):
+        listed = ", ".join(f"{k} {v}" for k, v in sorted(packages.items()))
+        lines.append("- packages: " + _md(listed))
     if result.workers:
-        lines.append(f"- workers: {_md(', '.join(sorted(result.workers)))}")
-    lines.append("")
+        lines.append(f"- workers ({len(result.workers)}): "
+                     f"{_md(', '.join(sorted(result.workers)))}")
+    lines += ["", f"_{CAUTION}_", ""]
     return "\n".join(lines)
 
 

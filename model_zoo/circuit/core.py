@@ -507,7 +507,20 @@ def _sum_chunk(values, children, weights, log_weights, out, m: int, mode: str) -
     np.add(s, top, out=out)
 
 
-def forward(circuit: Circuit, states: np.ndarray, *, mode: str = "sum") -> np.ndarray:
+def _region_plan(circuit: Circuit):
+    """The circuit's region plan (:mod:`model_zoo.circuit.regions`), built once; None when
+    the circuit does not have the region structure."""
+    cached = circuit._cache.get("_regions", False)
+    if cached is False:
+        from model_zoo.circuit.regions import region_plan
+
+        cached = region_plan(circuit._plan, circuit.n_nodes)  # type: ignore[attr-defined]
+        circuit._cache["_regions"] = cached
+    return cached
+
+
+def forward(circuit: Circuit, states: np.ndarray, *, mode: str = "sum",
+            engine: str = "auto") -> np.ndarray:
     """Log-value of the root for every column of ``states``.
 
     Parameters
@@ -520,6 +533,11 @@ def forward(circuit: Circuit, states: np.ndarray, *, mode: str = "sum") -> np.nd
     mode
         ``"sum"`` (the network polynomial: likelihoods and marginals) or ``"max"``
         (max-product).
+    engine
+        ``"auto"`` (default): in sum mode, the region engine of
+        :mod:`model_zoo.circuit.regions` when the circuit is made of region products (vtree
+        circuits), else the layered pass; ``"layers"`` forces the layered pass (every node's
+        value is computed; the reference the region engine is tested against).
 
     Returns
     -------
@@ -534,6 +552,15 @@ def forward(circuit: Circuit, states: np.ndarray, *, mode: str = "sum") -> np.nd
     if states.ndim != 2 or states.shape[0] != circuit.n_variables:
         raise InputError.at("circuit evaluation", "states",
                             f"an array of shape ({circuit.n_variables}, batch)", states.shape)
+    if engine not in ("auto", "layers"):
+        raise InputError.at("circuit evaluation", "engine", "'auto' or 'layers'", engine)
+    if mode == "sum" and engine == "auto":
+        rplan = _region_plan(circuit)
+        if rplan is not None:
+            from model_zoo.circuit.regions import root_log_values
+
+            plan: _Plan = circuit._plan  # type: ignore[attr-defined]
+            return root_log_values(rplan, _leaf_rows(plan, states, "sum"))
     values = _run(circuit, states, mode)
     return values[circuit._plan.root_row].copy()  # type: ignore[attr-defined]
 

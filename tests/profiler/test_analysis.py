@@ -149,3 +149,17 @@ def test_format_growth_of_no_verdict():
 def test_format_growth_of_a_real_fit(linear):
     assert re.fullmatch(r"polynomial, n\^\d\.\d\d \[\d\.\d\d, \d\.\d\d\]",
                         format_growth(linear.work))
+
+
+def test_same_study_is_not_fitted_twice(monkeypatch):
+    """`run` writes the report and prints the table from one result: one set of fits."""
+    calls = []
+    real = analysis.analyse_curve
+    monkeypatch.setattr(analysis, "analyse_curve",
+                        lambda c, seed=0: calls.append(c.index) or real(c, seed=seed))
+    study = make_study([make_curve(0, sizes=(4, 8)), make_curve(1, sizes=(4, 8))],
+                       name="cache-check")
+    first = analyse_study(study)
+    again = analyse_study(study)
+    assert calls == [0, 1]
+    assert [a.key for a in again] == [a.key for a in first]

@@ -353,21 +353,17 @@ def test_degree_gap_is_noted_without_changing_the_class():
 
 
 # -- every bundled network -------------------------------------------------------------------------
-def _load_seconds(name):
-    t0 = time.perf_counter()
-    load_model(name)
-    return time.perf_counter() - t0
-
-
-FAST_NETWORKS = ["sachs", "child"]
+FAST_NETWORKS = ["child"]
 
 
 def _check_finished(result):
     for lv, entry in result["levels"].items():
-        assert entry["skipped"] is None or entry["skipped"], (lv, entry)
+        assert entry["predicted_work"] is not None, (lv, entry)
         if entry["skipped"] is None:
-            assert entry["n_queries"] == entry["n_asked"] > 0
-        assert entry["predicted_work"] is not None
+            assert entry["n_queries"] == entry["n_asked"] > 0, (lv, entry)
+        else:
+            # a cap was met: said in words, never an out-of-memory crash
+            assert "cap" in entry["skipped"], (lv, entry)
 
 
 @pytest.mark.parametrize("name", FAST_NETWORKS)
@@ -375,18 +371,25 @@ def test_fast_bundled_networks_audit(name):
     """Small shipped networks audit end to end with 10 queries per level."""
     result = audit_model(name, n_queries=10, point_timeout_s=20, options=False)
     _check_finished(result)
+    assert all(e["skipped"] is None for e in result["levels"].values())
 
 
 @pytest.mark.slow
 def test_every_bundled_network_finishes_or_reports_the_cap():
-    """Every shipped network that loads in under 2 s audits within the caps: measured, or a
-    predicted cost over the cap reported instead of running out of memory."""
+    """Every shipped network that loads in under 2 s (CPU time, so a busy machine does not
+    change the set) audits with 10 queries per level within the caps: measured, or a predicted
+    cost over the cap reported instead of running out of memory."""
     from model_zoo.networks import bundled_networks
 
+    load_model("cancer")  # untimed: the first load pays for importing pgmpy's reader
+    audited = []
     for name in bundled_networks():
-        if _load_seconds(name) >= 2.0:
+        t0 = time.process_time()
+        family, instance, _ = load_model(name)
+        if time.process_time() - t0 >= 2.0:
             continue
-        t0 = time.perf_counter()
-        result = audit_model(name, n_queries=10, point_timeout_s=20, memory_mb=2048)
+        result = audit_instance(family, instance, name=name, n_queries=10, point_timeout_s=20,
+                                memory_mb=2048)
         _check_finished(result)
-        assert time.perf_counter() - t0 < 120, name
+        audited.append(name)
+    assert {"asia", "alarm", "child", "insurance"} <= set(audited)

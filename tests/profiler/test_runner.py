@@ -118,7 +118,7 @@ def test_the_budget_cuts_curves_and_the_store_says_which(tmp_path):
 
 
 def write_study(tmp_path) -> Path:
-    sizes = list(range(2, 16))
+    sizes = list(range(2, 12))
     path = tmp_path / "kill.toml"
     path.write_text(
         'name = "killme"\nbudget_s = 200\npoint_timeout_s = 5\nmemory_mb = 256\n'
@@ -163,11 +163,15 @@ def test_kill_minus_nine_then_resume_measures_only_the_missing_points(tmp_path):
         workers_seen |= _children(proc.pid)
         proc.send_signal(signal.SIGKILL)
         proc.wait()
-    # the workers die with the study (parent-death signal), none is left measuring
-    time.sleep(0.5)
-    assert workers_seen and not any(_alive(pid) for pid in workers_seen)
+    # the workers die with the study (parent-death signal, or end of input for one still
+    # starting), none is left measuring
+    assert workers_seen
+    give_up = time.monotonic() + 15
+    while any(_alive(pid) for pid in workers_seen) and time.monotonic() < give_up:
+        time.sleep(0.1)
+    assert not any(_alive(pid) for pid in workers_seen)
     before = count_points(store)
-    assert 5 <= before < 28
+    assert 5 <= before < 20
     resumed = subprocess.run(cmd + ["--resume"], cwd=ROOT, env=env, capture_output=True,
                              text=True, timeout=120)
     assert resumed.returncode == 0, resumed.stderr
@@ -177,21 +181,24 @@ def test_kill_minus_nine_then_resume_measures_only_the_missing_points(tmp_path):
         rows = con.execute("SELECT curve, size FROM points").fetchall()
     finally:
         con.close()
-    assert sorted(rows) == sorted((c, s) for c in (0, 1) for s in range(2, 16))
+    assert sorted(rows) == sorted((c, s) for c in (0, 1) for s in range(2, 12))
     with Store(store, create=False) as s:
         (study_row,) = s.studies()
         runs = s.runs(study_row["study_id"])
     assert [r["run"] for r in runs] == [1, 2]
     assert runs[0]["n_points"] == before
-    assert runs[1]["n_points"] == 28 - before
+    assert runs[1]["n_points"] == 20 - before
 
 
 def _children(pid: int) -> set[int]:
-    try:
-        text = Path(f"/proc/{pid}/task/{pid}/children").read_text()
-    except OSError:
-        return set()
-    return {int(x) for x in text.split()}
+    """Processes started by any thread of ``pid`` (Linux /proc)."""
+    found: set[int] = set()
+    for task in Path(f"/proc/{pid}/task").glob("*"):
+        try:
+            found |= {int(x) for x in (task / "children").read_text().split()}
+        except OSError:
+            continue
+    return found
 
 
 def _alive(pid: int) -> bool:
