@@ -334,7 +334,7 @@ def check(
             _emit_json([v.to_dict() for v in verdicts])
         else:
             sys.stdout.write(claims_mod.format_claims(verdicts) + "\n")
-        return 1 if any(v.status == "fails" for v in verdicts) else 0
+        return claims_mod.exit_code(verdicts)
 
     code = _guarded(go)
     if code:

@@ -287,12 +287,11 @@ def _curve_facts(cspec: Any) -> dict[str, Any] | None:
 
 
 def _write_report(result: StudyResult, out: str | Path) -> StudyResult:
-    try:
-        from profiler.report import write_report
-    except ImportError:  # TODO(lead): remove once profiler/report.py exists everywhere
-        return replace(result, out_dir=str(out))
-    write_report(replace(result, out_dir=str(out)), out)
-    return replace(result, out_dir=str(out))
+    from profiler.report import write_report
+
+    result = replace(result, out_dir=str(out))
+    write_report(result, out)
+    return result
 
 
 class _Progress:

@@ -36,7 +36,7 @@ import numpy as np
 from model_zoo.base import Answer, FamilyBase, Level, Query, Size, make_rng, register
 from model_zoo.circuit import checks
 from model_zoo.circuit.compile import CompiledCircuit, compile_network
-from model_zoo.circuit.core import Circuit, _run
+from model_zoo.circuit.core import Circuit, _run, forward
 from model_zoo.circuit.io import dump_circuit, load_circuit
 from model_zoo.circuit.vtree import VTREE_TOPOLOGIES, canonical_topology, vtree_circuit
 from model_zoo.discrete import DiscreteNetwork
@@ -347,8 +347,8 @@ class CircuitFamily(FamilyBase):
                     a = jobs[j][0]
                     if a:
                         states[list(a.keys()), col] = list(a.values())
-                values = _run(c, states, mode)
-                out[part] = values[c._plan.root_row] - c.log_z  # type: ignore[attr-defined]
+                # root-only pass: the region engine where the circuit allows it
+                out[part] = forward(c, states, mode=mode) - c.log_z
         return out
 
     def answer(self, instance: CircuitInstance, query: Query, *, method: str = "exact") -> Answer:

@@ -178,12 +178,18 @@ def region_plan(plan: Any, n_plan_rows: int) -> RegionPlan | None:
         block_of[o] = i
     # consumers of each block's outputs (as blocks); -1 = several
     consumer = np.full(n_blocks, -2, dtype=np.int64)
-    for i in range(n_blocks):
-        for rows in (a_rows[i], r_rows[i]):
-            for b in np.unique(block_of[rows[rows >= n_leaves]]).tolist():
-                if b < 0:
-                    continue
-                consumer[b] = i if consumer[b] in (-2, i) else -1
+    sizes = [x.shape[0] + y.shape[0] for x, y in zip(a_rows, r_rows)]
+    used = block_of[np.concatenate(a_rows + r_rows)] if n_blocks else np.empty(0, np.int64)
+    user = np.concatenate([np.repeat(np.arange(n_blocks), [x.shape[0] for x in a_rows]),
+                           np.repeat(np.arange(n_blocks), [y.shape[0] for y in r_rows])]) \
+        if n_blocks else np.empty(0, np.int64)
+    keep = used >= 0
+    pairs = np.unique(np.stack([used[keep], user[keep]], axis=1), axis=0) if keep.any() \
+        else np.empty((0, 2), np.int64)
+    n_users = np.bincount(pairs[:, 0], minlength=n_blocks)
+    consumer[pairs[:, 0]] = pairs[:, 1]
+    consumer[n_users > 1] = -1
+    del sizes
     root_block = int(block_of[plan.root_row])
 
     # -- chain links: X (cross) -> Y when X's one input is leaves and the other is all of Y --
@@ -324,6 +330,19 @@ def _shifted(values: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray]:
     return e, top
 
 
+def _stacked_matmul(w: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``w @ x`` for stacks ``(J, p, q) @ (J, q, B)``. Stacked ``np.matmul`` pays about a
+    microsecond per matrix, which dominates tiny matrices (K = 1, 2 vtree nodes, batch 1); for an
+    inner size up to ``_LOOP_WIDTH`` a loop of broadcast multiply-adds over the stack is faster."""
+    q = w.shape[2]
+    if q > _LOOP_WIDTH:
+        return np.matmul(w, x)
+    out = w[:, :, 0, None] * x[:, None, 0, :]
+    for i in range(1, q):
+        out += w[:, :, i, None] * x[:, None, i, :]
+    return out
+
+
 def _run_cross(vals: np.ndarray, op: _Cross, batch: int) -> None:
     j_all = op.a_rows.shape[0]
     per = op.m * op.r * batch + (op.a + op.r) * batch
@@ -332,7 +351,7 @@ def _run_cross(vals: np.ndarray, op: _Cross, batch: int) -> None:
         j1 = min(j_all, j0 + step)
         ea, ta = _shifted(vals[op.a_rows[j0:j1]], 1)              # (J, a, B)
         er, tr = _shifted(vals[op.r_rows[j0:j1]], 1)              # (J, r, B)
-        t = np.matmul(op.w[j0:j1], ea).reshape(j1 - j0, op.m, op.r, batch)
+        t = _stacked_matmul(op.w[j0:j1], ea).reshape(j1 - j0, op.m, op.r, batch)
         t *= er[:, None, :, :]
         s = t.sum(axis=2)                                         # (J, m, B)
         np.log(s, out=s)
@@ -343,7 +362,7 @@ def _run_cross(vals: np.ndarray, op: _Cross, batch: int) -> None:
 
 def _run_mix(vals: np.ndarray, op: _Mix, batch: int) -> None:
     ec, tc = _shifted(vals[op.rows], 1)                           # (J, k, B)
-    s = np.matmul(op.w, ec)                                       # (J, m, B)
+    s = _stacked_matmul(op.w, ec)                                 # (J, m, B)
     np.log(s, out=s)
     s += tc
     vals[op.out:op.out + op.rows.shape[0] * op.m] = s.reshape(-1, batch)
@@ -378,7 +397,7 @@ def _chain_segment(vals: np.ndarray, op: _Chain, lo: int, hi: int, batch: int,
     """The product ``M_lo ... M_{hi-1}`` (renormalised) and its log-scale per column."""
     m = op.m
     ef, tf = _shifted(vals[op.leaf_rows[lo:hi]], 1)               # (L, f, B), (L, 1, B)
-    mats = np.matmul(op.w[lo:hi], ef).reshape(hi - lo, m, m, batch)
+    mats = _stacked_matmul(op.w[lo:hi], ef).reshape(hi - lo, m, m, batch)
     scale = tf[:, 0, :].copy()                                    # (L, B)
     if not batch_last:
         mats = np.ascontiguousarray(mats.transpose(0, 3, 1, 2))   # (L, B, m, m)
