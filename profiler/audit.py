@@ -114,8 +114,12 @@ def load_model(source: str | os.PathLike) -> tuple[Any, Any, str]:
                                     "a top-level key naming the family (e.g. \"circuit\")",
                                     None if not isinstance(doc, dict) else "no such key")
             family_name = doc["family"]
-            if not isinstance(family_name, str):
-                raise InputError.at(str(path), "family", "a family name", family_name)
+            # A data file names a registered family only: importing 'module:Class' is for code
+            # the user names on the command line, never for what a file asks for.
+            if not isinstance(family_name, str) or family_name not in model_zoo.names():
+                raise InputError.at(str(path), "family",
+                                    "a registered family (" + ", ".join(model_zoo.names()) + ")",
+                                    family_name)
             family = model_zoo.resolve(family_name, where=f"{path}: family")()
         elif kind in NETWORK_SUFFIXES:
             family = model_zoo.resolve("bayesnet")()

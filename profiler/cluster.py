@@ -161,6 +161,26 @@ def _dask_worker_environment(address: str, name: Any) -> dict[str, Any]:
         return dict(_WORKER_ENV[address])
 
 
+_HELD_LAUNCHER: list[Any] = []
+
+
+def _hold_launcher() -> None:
+    """Keep the harness's preloaded worker launcher alive for this Dask worker's life, so the
+    curves it runs fork their measuring processes instead of starting interpreters
+    (:func:`profiler.zygote.launcher_scope`; without it the harness spawns, as it always can)."""
+    with _WORKER_ENV_LOCK:
+        if _HELD_LAUNCHER:
+            return
+        try:
+            from profiler.zygote import launcher_scope
+
+            scope = launcher_scope()
+            scope.__enter__()
+            _HELD_LAUNCHER.append(scope)
+        except Exception:  # an optional speed-up: the harness falls back to spawning
+            _HELD_LAUNCHER.append(None)
+
+
 def _local_context(ctx_dict: dict[str, Any]) -> Any:
     """The study context as this machine must use it: its own interpreter, the client's paths
     that exist here first (a user's ``package.module:Class`` imports as on the client)."""
@@ -207,6 +227,7 @@ def _curve_task(job: dict[str, Any]) -> dict[str, Any]:
     history = [Point.from_dict(d) for d in job.get("history") or ()]
     spec = CurveSpec.from_dict(job["spec"])
     ctx = _local_context(job["ctx"])
+    _hold_launcher()
 
     stop = threading.Event()
     finished = threading.Event()

@@ -142,6 +142,7 @@ def run_study(spec: StudySpec, *, store: str | Path = "reports/infercost.sqlite"
     from profiler.environment import capture_environment
     from profiler.harness import kill_all_workers, run_curve
     from profiler.store import Store
+    from profiler.zygote import launcher_scope
 
     if quick:
         from profiler.study import quick_version
@@ -149,6 +150,9 @@ def run_study(spec: StudySpec, *, store: str | Path = "reports/infercost.sqlite"
         spec = quick_version(spec)
     t0 = time.monotonic()
     st = Store(store)
+    # One preloaded worker launcher for the whole study, closed when it ends (profiler.zygote).
+    scope = launcher_scope()
+    scope.__enter__()
     try:
         environment = capture_environment(seed=spec.seed, threads=spec.threads)
         study_id = st.open_study(spec, environment, resume=resume)
@@ -235,6 +239,7 @@ def run_study(spec: StudySpec, *, store: str | Path = "reports/infercost.sqlite"
         result = st.load_study(study_id)
     finally:
         st.close()
+        scope.__exit__(None, None, None)
     if out is not None:
         result = _write_report(result, out)
     if on_event is not None:

@@ -118,7 +118,7 @@ def region_plan(plan: Any, n_plan_rows: int) -> RegionPlan | None:
         np.add.at(n_parents, op.children.reshape(-1), op.m)
 
     # -- describe every block ------------------------------------------------------------------
-    # blocks[i] = dict(kind, out_rows (m,), inputs...) in topological (plan) order
+    # block i: kind, output rows (m,), input rows and weights, in topological (plan) order
     kinds: list[str] = []
     outs: list[np.ndarray] = []
     a_rows: list[np.ndarray] = []
@@ -178,7 +178,6 @@ def region_plan(plan: Any, n_plan_rows: int) -> RegionPlan | None:
         block_of[o] = i
     # consumers of each block's outputs (as blocks); -1 = several
     consumer = np.full(n_blocks, -2, dtype=np.int64)
-    sizes = [x.shape[0] + y.shape[0] for x, y in zip(a_rows, r_rows)]
     used = block_of[np.concatenate(a_rows + r_rows)] if n_blocks else np.empty(0, np.int64)
     user = np.concatenate([np.repeat(np.arange(n_blocks), [x.shape[0] for x in a_rows]),
                            np.repeat(np.arange(n_blocks), [y.shape[0] for y in r_rows])]) \
@@ -189,7 +188,6 @@ def region_plan(plan: Any, n_plan_rows: int) -> RegionPlan | None:
     n_users = np.bincount(pairs[:, 0], minlength=n_blocks)
     consumer[pairs[:, 0]] = pairs[:, 1]
     consumer[n_users > 1] = -1
-    del sizes
     root_block = int(block_of[plan.root_row])
 
     # -- chain links: X (cross) -> Y when X's one input is leaves and the other is all of Y --
@@ -288,9 +286,9 @@ def region_plan(plan: Any, n_plan_rows: int) -> RegionPlan | None:
             m, f = w.shape[1], w.shape[2]
             bottom_y = link[path[-1]][0]
             log_w = None
-            if m == 1:
+            if m == 1 and f == 1:
                 with np.errstate(divide="ignore"):
-                    log_w = None if f != 1 else np.log(w[:, 0, 0, 0])
+                    log_w = np.log(w[:, 0, 0, 0])
             ops.append(_Chain(out=start, m=m, f=f, leaf_rows=np.stack(leaves),
                               base_rows=np.sort(outs[bottom_y]),
                               w=np.ascontiguousarray(w.transpose(0, 1, 3, 2).reshape(

@@ -30,14 +30,14 @@ import numpy as np
 GOAL_RATIO = 0.25
 _FLOOR_CHUNK = 1 << 22
 
-#: (topology, K, approximate edges); right-linear K = 1, 2 stop at 10^5 edges because building
+#: (topology, K, approximate edges); right-linear K = 1 stops at 10^4 and K = 2 at 10^5 edges: building
 #: a 60,000-variable right-linear circuit (plan construction, not the pass) takes minutes.
 CASES = [
     ("balanced", 1, 10**4), ("balanced", 1, 10**5), ("balanced", 1, 10**6),
     ("balanced", 2, 10**4), ("balanced", 2, 10**5), ("balanced", 2, 10**6),
     ("balanced", 4, 10**4), ("balanced", 4, 10**5), ("balanced", 4, 10**6),
     ("balanced", 8, 10**4), ("balanced", 8, 10**6),
-    ("right_linear", 1, 10**4), ("right_linear", 1, 10**5),
+    ("right_linear", 1, 10**4),
     ("right_linear", 2, 10**4), ("right_linear", 2, 10**5),
     ("right_linear", 4, 10**4), ("right_linear", 4, 10**5), ("right_linear", 4, 10**6),
     ("right_linear", 8, 10**4), ("right_linear", 8, 10**6),

@@ -393,3 +393,10 @@ def test_every_bundled_network_finishes_or_reports_the_cap():
         _check_finished(result)
         audited.append(name)
     assert {"asia", "alarm", "child", "insurance"} <= set(audited)
+
+
+def test_json_family_must_be_registered(tmp_path):
+    """A data file cannot make the auditor import code: 'module:Class' is refused."""
+    path = _write(tmp_path, "model.json", json.dumps({"family": "os:system", "format_version": 1}))
+    with pytest.raises(InputError, match="registered family"):
+        load_model(path)

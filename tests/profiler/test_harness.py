@@ -233,3 +233,197 @@ def test_events_report_each_point():
     assert kinds == ["point_start", "point", "point_start", "point"]
     assert all({"curve", "key", "size", "cap"} <= set(e) for e in events)
     assert events[1]["status"] == "ok" and events[1]["seconds"] > 0
+
+
+# ------------------------------------------------------------------ launchers (profiler.zygote)
+LAUNCHERS = ["auto", "spawn"]
+
+
+def _running(pid: int) -> bool:
+    """Whether a process exists and is not a zombie (os.kill(pid, 0), then its /proc state)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] != "Z"
+    except OSError:
+        return False
+
+
+def _wait_gone(pids, seconds: float = 10.0) -> bool:
+    end = time.monotonic() + seconds
+    while any(_running(p) for p in pids) and time.monotonic() < end:
+        time.sleep(0.05)
+    return not any(_running(p) for p in pids)
+
+
+zygote_only = pytest.mark.skipif(not __import__("profiler.zygote").zygote.is_supported(),
+                                 reason="the preloaded launcher needs Linux and send_fds")
+
+
+@zygote_only
+def test_workers_are_forked_from_the_zygote_and_answer_correctly():
+    """On Linux a worker is a fork of the preloaded zygote (not of this process, not a fresh
+    interpreter); it answers as a spawned worker does (exact answers checked against the
+    reference), measures its own memory baseline, and the environment says how it started."""
+    from profiler import zygote
+
+    forked = run_curve(ctx(), 0, curve("LinearFamily", sizes=(4, 16), queries=3), set())
+    spawned = run_curve(ctx(launcher="spawn"), 0, curve("LinearFamily", sizes=(4, 16), queries=3),
+                        set())
+    (env,) = forked.workers.values()
+    assert env["launcher"] == "fork-preloaded"
+    assert env["zygote_pid"] not in (None, os.getpid()) and env["pid"] != env["zygote_pid"]
+    assert env["memory_limit_bytes"] == env["baseline_vm_bytes"] + 512 * 2 ** 20
+    assert [p.status for p in forked.points] == ["ok", "ok"]
+    assert [(p.size, p.work, p.max_error) for p in forked.points] == \
+        [(p.size, p.work, p.max_error) for p in spawned.points]
+    assert next(iter(spawned.workers.values()))["launcher"] == "spawn"
+    # outside a study the zygote lingers briefly for the next curve, then goes
+    assert any(z.pid == env["zygote_pid"] for z in zygote.live_zygotes())
+    assert _wait_gone([env["zygote_pid"], env["pid"]], zygote.LINGER_S + 10)
+
+
+@pytest.mark.parametrize("launcher", LAUNCHERS)
+def test_timeout_kill_holds_on_both_launchers(launcher):
+    """The runaway point is killed within cap + 1 s whichever way the worker was started."""
+    out = run_curve(ctx(point_timeout_s=1.0, launcher=launcher), 0,
+                    curve("DoublingFamily", sizes=(10, 30), params=(("base_seconds", 1e-5),)),
+                    set())
+    by_size = {p.size: p for p in out.points}
+    assert by_size[10].status == "ok" and by_size[30].status == "timeout"
+    assert out.point_seconds[30][0] <= 1.0 + 1.0
+    envs = list(out.workers.values())
+    assert envs[0]["launcher"] == ("spawn" if launcher == "spawn" else "fork-preloaded")
+    assert _wait_gone([e["pid"] for e in envs], 5)  # the killed worker is gone, not a zombie
+
+
+@pytest.mark.parametrize("launcher", LAUNCHERS)
+def test_segfault_and_memory_cap_on_both_launchers(launcher):
+    """A segfault in a (forked) worker is an 'error' naming SIGSEGV; the next worker still
+    starts; an unbounded allocation is a 'memory' point under the child's own RLIMIT_AS."""
+    crash = run_curve(ctx(launcher=launcher), 0,
+                      curve("CrashingFamily", sizes=(2, 4), params=(("crash_from", 4),)), set())
+    by_size = {p.size: p for p in crash.points}
+    assert by_size[2].status == "ok"
+    assert by_size[4].status == "error" and "SIGSEGV" in by_size[4].message
+    assert "Segmentation fault" in by_size[4].message  # faulthandler's line, from the child
+    mem = run_curve(ctx(point_timeout_s=20.0, memory_mb=96, launcher=launcher), 0,
+                    curve("AllocatingFamily", sizes=(2, 4), params=(("alloc_from", 4),)), set())
+    assert [p.status for p in mem.points] == ["ok", "memory"]
+    env = next(iter(mem.workers.values()))
+    assert env["memory_limit_bytes"] == env["baseline_vm_bytes"] + 96 * 2 ** 20
+
+
+def test_fallback_to_spawn_when_the_zygote_cannot_start(monkeypatch):
+    """A zygote that fails to start is not an error: workers are spawned, and the environment
+    records 'spawn' with the reason; INFERCOST_LAUNCHER=spawn forces the same path."""
+    from profiler import zygote
+
+    monkeypatch.setattr(zygote, "acquire", lambda **kw: (None, "no zygote today"))
+    monkeypatch.setattr(zygote, "is_supported", lambda: True)
+    out = run_curve(ctx(), 0, curve("LinearFamily", sizes=(2, 3)), set())
+    assert [p.status for p in out.points] == ["ok", "ok"]
+    (env,) = out.workers.values()
+    assert env["launcher"] == "spawn" and env["launcher_note"] == "no zygote today"
+    monkeypatch.undo()
+    monkeypatch.setenv("INFERCOST_LAUNCHER", "spawn")
+    out = run_curve(ctx(), 0, curve("LinearFamily", sizes=(2,)), set())
+    assert next(iter(out.workers.values()))["launcher"] == "spawn"
+
+
+@zygote_only
+def test_a_zygote_that_fails_its_start_falls_back(monkeypatch):
+    """A zygote process that dies during its imports (here: an interpreter that exits at once)
+    leaves the curve measuring through spawned workers."""
+    from profiler import zygote
+
+    monkeypatch.setattr(zygote, "_key", lambda *a: ("broken-zygote-test",))
+    real_init = zygote.Zygote.__init__
+
+    def broken(self, **kw):
+        real_init(self, **kw)
+        self.python = "/bin/false"  # exits 1 before saying "ready"
+
+    monkeypatch.setattr(zygote.Zygote, "__init__", broken)
+    out = run_curve(ctx(), 0, curve("LinearFamily", sizes=(2,)), set())
+    (env,) = out.workers.values()
+    assert out.points[0].status == "ok"
+    assert env["launcher"] == "spawn" and "zygote" in env["launcher_note"]
+    monkeypatch.undo()
+    zygote._STARTS.pop(("broken-zygote-test",), None)
+
+
+@zygote_only
+def test_the_zygote_exits_when_the_study_ends(tmp_path):
+    """No leaked processes: after run_study returns, the zygote and every worker it forked are
+    gone (checked with os.kill(pid, 0))."""
+    from profiler.records import StudySpec
+    from profiler.runner import run_study
+
+    spec = StudySpec(name="zygote-end", budget_s=60, point_timeout_s=5, memory_mb=256,
+                     curves=(curve("LinearFamily", sizes=(2, 4)),
+                             curve("CrashingFamily", sizes=(2, 4), params=(("crash_from", 4),))))
+    result = run_study(spec, store=tmp_path / "s.sqlite", quick=True)
+    envs = list(result.workers.values())
+    assert envs and all(e["launcher"] == "fork-preloaded" for e in envs)
+    pids = {e["zygote_pid"] for e in envs} | {e["pid"] for e in envs}
+    assert len({e["zygote_pid"] for e in envs}) == 1  # one zygote for the whole study
+    for pid in pids:
+        with pytest.raises(ProcessLookupError):
+            os.kill(pid, 0)
+
+
+@zygote_only
+def test_zygote_and_workers_die_with_a_killed_parent(tmp_path):
+    """kill -9 of the process that started the zygote takes the zygote and its forked worker
+    with it (parent-death signal and end-of-file on the socket)."""
+    import signal
+    import subprocess
+    import sys
+
+    script = (
+        "import sys, time\n"
+        "from profiler import zygote\n"
+        "from profiler.harness import worker_env\n"
+        "z, why = zygote.acquire(python=sys.executable, threads=1, sys_path=tuple(sys.path),\n"
+        "                        env=worker_env(1))\n"
+        "err = open(sys.argv[1], 'wb')\n"
+        "p = z.spawn(stderr_fd=err.fileno(), families=False)\n"
+        "print(z.pid, p.pid, flush=True)\n"
+        "time.sleep(60)\n")
+    root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    proc = subprocess.Popen([sys.executable, "-c", script, str(tmp_path / "err")],
+                            stdout=subprocess.PIPE, cwd=root, text=True,
+                            env=dict(os.environ, PYTHONPATH=root))
+    try:
+        line = proc.stdout.readline()
+        zpid, wpid = (int(x) for x in line.split())
+        assert _running(zpid) and _running(wpid)
+    finally:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+    assert _wait_gone([zpid, wpid], 10)
+
+
+def test_workers_import_a_family_from_the_working_directory(tmp_path, monkeypatch):
+    """A user's family module in the current directory imports in the workers even when the
+    study's import path does not list that directory (as under the console script)."""
+    (tmp_path / "my_family_here.py").write_text(
+        "from tests.families_for_tests import LinearFamily\n"
+        "class Mine(LinearFamily):\n    name = 'mine'\n")
+    root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    monkeypatch.setenv("PYTHONPATH", root)
+    path = tuple(p for p in __import__("sys").path if p and os.path.abspath(p) != str(tmp_path))
+    # A zygote started from another directory first (it is then reused: same settings).
+    run_curve(ctx(sys_path=path), 0, curve("LinearFamily", sizes=(2,)), set())
+    monkeypatch.chdir(tmp_path)
+    for launcher in LAUNCHERS:
+        spec = curve("LinearFamily", sizes=(2,))
+        spec = CurveSpec(**{**spec.__dict__, "family": "my_family_here:Mine"})
+        out = run_curve(ctx(sys_path=path, launcher=launcher), 0, spec, set())
+        assert [p.status for p in out.points] == ["ok"], (launcher, out.points[0].message)
