@@ -18,7 +18,7 @@ import numpy as np
 
 from profiler.errors import InputError
 
-__all__ = ["read_fit_csv", "fit_csv", "JSON_KEYS"]
+__all__ = ["read_fit_csv", "fit_csv", "format_fit_rows", "JSON_KEYS"]
 
 #: Keys of each object in the ``infercost fit --json`` list, in order.
 JSON_KEYS = ("curve", "growth", "degree", "degree_ci", "base", "base_ci", "gamma", "gamma_ci",
@@ -71,12 +71,15 @@ def read_fit_csv(path: str | Path, *, size: str = "size", cost: str = "cost",
         text = p.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(f"{p}: expected a readable UTF-8 CSV file, got {exc}") from exc
-    reader = csv.reader(text.splitlines())
     try:
-        header = [h.strip() for h in next(reader)]
-    except StopIteration:
+        rows = list(csv.reader(text.splitlines()))
+    except csv.Error as exc:
+        raise InputError(f"{p}: expected CSV text, got a malformed file ({exc})") from exc
+    if not rows:
         raise InputError(f"{p}: expected a header row with columns {size!r} and {cost!r}, "
-                         f"got an empty file") from None
+                         f"got an empty file")
+    header = [h.strip() for h in rows[0]]
+    reader = iter(rows[1:])
     for col in (size, cost):
         if col not in header:
             raise InputError(f"{p}: row 1: column {col!r}: expected a column of that name, got "
@@ -146,3 +149,42 @@ def fit_csv(path: str | Path, *, size: str = "size", cost: str = "cost",
         d["curve"] = label
         out.append(d)
     return out
+
+
+def _ci(lo_hi) -> str:
+    return "" if lo_hi is None else f"[{lo_hi[0]:.3g}, {lo_hi[1]:.3g}]"
+
+
+def format_fit_rows(verdicts: list[dict]) -> tuple[list[str], list[list[str]]]:
+    """Columns and string rows of the terminal table of ``infercost fit`` (the CLI renders them).
+
+    One row per curve: label, growth (with the leaning in brackets), degree or base or gamma with
+    its interval, confidence, Lambda, local degree/base at the largest size, points (censored),
+    suggested next sizes, and the first reason.
+    """
+    columns = ["curve", "growth", "estimate", "95% interval", "confidence", "lambda",
+               "local degree", "local base", "points", "next sizes", "note"]
+    rows = []
+    for d in verdicts:
+        growth = d["growth"] + (f" (leaning {d['leaning']})" if d.get("leaning") else "")
+        if d.get("gamma") is not None and d["growth"] != "polynomial":
+            est, ci = f"gamma {d['gamma']:.3g}", _ci(d.get("gamma_ci"))
+        elif d["growth"] == "exponential" or (d.get("degree") is None and d.get("base")):
+            est = "" if d.get("base") is None else f"base {d['base']:.4g}"
+            ci = _ci(d.get("base_ci"))
+        elif d.get("degree") is not None:
+            est, ci = f"degree {d['degree']:.3g}", _ci(d.get("degree_ci"))
+        else:
+            est, ci = "", ""
+        pts = str(d.get("n_points", ""))
+        if d.get("n_censored"):
+            pts += f" ({d['n_censored']} censored)"
+        rows.append([
+            str(d.get("curve")), growth, est, ci, f"{d['confidence']:.3f}",
+            f"{d['lambda']:.1f}" if d.get("lambda") is not None else "",
+            "" if d.get("local_degree") is None else f"{d['local_degree']:.3g}",
+            "" if d.get("local_base") is None else f"{d['local_base']:.4g}",
+            pts, ", ".join(str(x) for x in d.get("next_sizes") or ()),
+            (d.get("reasons") or [""])[0],
+        ])
+    return columns, rows

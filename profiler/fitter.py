@@ -626,7 +626,7 @@ def _solve(law: Law, data: _Data, theta0: np.ndarray, ys: np.ndarray | None = No
             sigma2 = np.where(take, new_s2, sigma2)
             gain = gain + np.where(take, obj - obj2, 0.0)
             obj = np.where(take, obj2, obj)
-        done = (good & (gain <= 1e-10 * (1.0 + np.abs(obj)))) | (lam > 1e10)
+        done = (good & (gain <= 1e-9 * (1e-2 + np.abs(obj)))) | (lam > 1e10)
         active &= ~done
         if not active.any():
             break
@@ -1100,7 +1100,12 @@ def fit_growth(sizes, costs, censored=None, *, repeats=None, laws: Sequence[Law]
     flat_name = poly3.without_overhead().name if poly3.overhead else poly3.name
     fl, fth, fll, _ = raw[flat_name]
     jf = fl.index("degree")
-    flat_ci = _ci_from(fl, data, fth, fll, fits[flat_name], jf, float)
+    if c.any() or fits[flat_name].cov is None:
+        flat_ci = _ci_from(fl, data, fth, fll, fits[flat_name], jf, float)
+    else:
+        # The bare power law is linear on log-log axes: its exact t interval, no profile needed.
+        half = _quantile(0.95, N - fl.n_params) * math.sqrt(max(fits[flat_name].cov[jf][jf], 0))
+        flat_ci = (float(fth[jf] - half), float(fth[jf] + half))
     flat = flat_ci[0] >= -FLAT_DEGREE and flat_ci[1] <= FLAT_DEGREE
     decreasing = flat_ci[1] < 0 and not flat
     pl, pth, pll, _ = raw[p_name]
