@@ -3,6 +3,10 @@
 The file has a header row and columns ``size`` and ``cost`` (names configurable), optionally
 ``censored`` (0/1, or true/false: the cost is only a lower bound) and ``curve`` (a label; one
 verdict per label, in order of first appearance; label ``"all"`` when the column is absent).
+A ``status`` column, as in the ``points.csv`` that ``infercost run`` writes, is understood:
+``error`` and ``wrong`` rows are skipped, ``timeout`` and ``memory`` rows are censored (and
+skipped when they hold no cost), so ``infercost fit points.csv --cost work --curve curve_key``
+gives the study's own verdicts.
 Every bad cell is an :class:`~profiler.errors.InputError` naming the file, the row number (the
 header is row 1, as a spreadsheet shows it) and the column.
 """
@@ -26,6 +30,10 @@ JSON_KEYS = ("curve", "growth", "degree", "degree_ci", "base", "base_ci", "gamma
 
 _TRUE = {"1", "true", "yes", "y", "t"}
 _FALSE = {"0", "false", "no", "n", "f", ""}
+
+
+_SKIPPED_STATUSES = frozenset({"error", "wrong"})
+_CENSORED_STATUSES = frozenset({"timeout", "memory"})
 
 
 def _number(text: str, where: str, column: str) -> float:
@@ -87,6 +95,10 @@ def read_fit_csv(path: str | Path, *, size: str = "size", cost: str = "cost",
     i_size, i_cost = header.index(size), header.index(cost)
     i_cens = header.index(censored) if censored in header else None
     i_curve = header.index(curve) if curve in header else None
+    # A points.csv written by `infercost run` has a status column: failed and wrong points carry
+    # no cost to fit, and censored points without a count of their own are skipped, as the
+    # study's own analysis does.
+    i_status = header.index("status") if "status" in header else None
     groups: dict[str, tuple[list[float], list[float], list[bool]]] = {}
     n_rows = 0
     for row_no, row in enumerate(reader, start=2):
@@ -97,13 +109,16 @@ def read_fit_csv(path: str | Path, *, size: str = "size", cost: str = "cost",
             missing = header[len(row)]
             raise InputError(f"{where}: column {missing!r}: expected {len(header)} cells, got "
                              f"{len(row)}")
+        status = row[i_status].strip() if i_status is not None else "ok"
+        if status in _SKIPPED_STATUSES or (status in _CENSORED_STATUSES and not row[i_cost].strip()):
+            continue
         s = _number(row[i_size].strip(), where, size)
         if s < 1:
             raise InputError(f"{where}: column {size!r}: expected a size >= 1, got {row[i_size]!r}")
         c = _number(row[i_cost].strip(), where, cost)
         if c <= 0:
             raise InputError(f"{where}: column {cost!r}: expected a cost > 0, got {row[i_cost]!r}")
-        flag = False
+        flag = status in _CENSORED_STATUSES
         if i_cens is not None:
             word = row[i_cens].strip().lower()
             if word in _TRUE:

@@ -480,6 +480,8 @@ def points_csv_rows(result: StudyResult) -> list[dict[str, Any]]:
                    "curve_key": key}
             for col in POINT_COLUMNS[4:]:
                 row[col] = getattr(p, col)
+            # 0/1 beside status, so `infercost fit points.csv` reads lower bounds as such.
+            row["censored"] = int(p.is_censored)
             for k in profile_keys:
                 row[f"profile_{k}"] = p.profile.get(k)
             rows.append(row)

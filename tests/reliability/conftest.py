@@ -74,3 +74,29 @@ def dask_client():
 
     with open_client("local:2") as client:
         yield client
+
+
+def _exp_work_family():
+    from model_zoo.base import Answer
+    from tests.families_for_tests import LinearFamily
+
+    class ExpWorkFamily(LinearFamily):
+        """Honest answers whose counted work doubles per size unit (cheap to run: the work is
+        counted, not spent), for tests that need an exponential curve by work."""
+
+        name = "test_expwork"
+
+        def answer(self, instance, query, *, method):
+            a = super().answer(instance, query, method=method)
+            return Answer(value=a.value, work=float(2.0 ** instance.size.graph))
+
+        def predicted_work(self, instance, query, *, method):
+            return float(2.0 ** instance.size.graph)
+
+        def expected_growth(self, *, axis, topology, level, method):
+            return "exponential"
+
+    return ExpWorkFamily
+
+
+ExpWorkFamily = _exp_work_family()

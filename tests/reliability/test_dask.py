@@ -209,8 +209,9 @@ def test_resume_after_a_local_run_continues_on_dask(dask_client, tmp_path):
 #: 12 quick curves: cheap worker start-up (no pgmpy), polynomial and exponential work laws.
 FAST_CURVES = tuple(
     [toy(f, [1, 2, 3, 4, 6, 8], level=lv) for f in (1, 2, 3) for lv in ("associational", "interventional")]
-    + [toy(1, [1, 2, 3, 4, 5, 6], family="DoublingFamily", base_seconds=1e-6),
-       toy(2, [1, 2, 3, 4, 5, 6], family="DoublingFamily", base_seconds=1e-6)]
+    + [CurveSpec("tests.reliability.conftest:ExpWorkFamily", lv, "exact", "graph", "chain", 1,
+                 sizes=(1, 2, 3, 4, 6, 8, 10), queries=2)
+       for lv in ("associational", "interventional")]
     + [CurveSpec("linear_scm", lv, "exact", "graph", "chain", 2, sizes=(4, 8, 16, 32, 64), queries=3)
        for lv in ("associational", "interventional", "counterfactual")]
     + [CurveSpec("linear_scm", "counterfactual", "exact", "mechanism", "random", 12,

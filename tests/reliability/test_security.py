@@ -162,9 +162,6 @@ def test_user_family_named_explicitly_is_imported(tmp_path):
     assert imported
 
 
-@pytest.mark.xfail(strict=True, reason="profiler.audit.load_model resolves a model file's "
-                   "'family' key with model_zoo.resolve, which imports 'module:Class' named in "
-                   "the data file; it should accept registered family names only")
 def test_a_model_file_cannot_name_code_to_import(tmp_path):
     """A JSON model whose ``family`` key names ``module:Class``: InputError, nothing imported —
     a data file is not the user naming their code."""
