@@ -374,8 +374,10 @@ def zoo(as_json: bool = typer.Option(False, "--json", help="As JSON on stdout.")
         if as_json:
             _emit_json(listing)
             return
+        # The table keeps the unit's name; its definition is in `zoo --json` and the docs.
         rows = [[f["name"], ", ".join(f["levels"]), ", ".join(f["methods"]), f["mechanism_knob"],
-                 ", ".join(f["topologies"]), f["work_unit"]] for f in listing["families"]]
+                 ", ".join(f["topologies"]), f["work_unit"].split(" (")[0]]
+                for f in listing["families"]]
         console = _console()
         console.print(_table("Families", ["family", "levels", "methods", "mechanism knob",
                                           "topologies", "work unit"], rows))
