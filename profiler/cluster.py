@@ -243,6 +243,11 @@ def _curve_task(job: dict[str, Any]) -> dict[str, Any]:
                 stop.set()
                 return
 
+    try:
+        if stop_event.is_set():  # the study's time ran out while this task waited
+            stop.set()
+    except Exception:
+        stop.set()
     threading.Thread(target=watch, name="infercost-stop-watch", daemon=True).start()
     t0 = time.monotonic()
     share_s, wall_deadline = float(job["share_s"]), float(job["wall_deadline"])
@@ -480,12 +485,19 @@ def run_curves_dask(address: str | None, ctx: Any, spec: StudySpec,
                 if status == "pending":
                     continue
                 drain()  # a finished task's puts all precede its result
+                exc = None
                 if status == "finished":
-                    del pending[i]
-                    finish(i, _outcome_from(fut.result()))
-                    continue
-                exc = fut.exception() if status == "error" else None
-                if status == "cancelled" or _is_worker_loss(exc):
+                    try:
+                        data = fut.result(timeout=60)
+                    except Exception as err:  # its result was on a worker that died since
+                        exc, status = err, "lost"
+                    else:
+                        del pending[i]
+                        finish(i, _outcome_from(data))
+                        continue
+                elif status == "error":
+                    exc = fut.exception()
+                if status in ("cancelled", "lost") or _is_worker_loss(exc):
                     if attempts[i] <= max_retries:
                         retried[i] = retried.get(i, 0) + 1
                         pending[i] = submit(i)

@@ -950,7 +950,16 @@ def _extend_sizes(n: np.ndarray) -> tuple[int, ...]:
 
 def _ci_from(law, data, theta, ll, fit, j, transform):
     lo, hi = _profile_interval(law, data, theta, ll, j, fit.cov)
-    return (transform(lo), transform(hi))
+    return (_safe(transform, lo, math.inf), _safe(transform, hi, math.inf))
+
+
+def _safe(transform, value, overflow):
+    """``transform(value)``, or ``overflow`` when it overflows: an interval bound beyond float
+    range (a poorly determined base) is reported as unbounded, not as a crash."""
+    try:
+        return transform(value)
+    except OverflowError:
+        return overflow
 
 
 def fit_growth(sizes, costs, censored=None, *, repeats=None, laws: Sequence[Law] = DEFAULT_LAWS,
@@ -1181,7 +1190,7 @@ def fit_growth(sizes, costs, censored=None, *, repeats=None, laws: Sequence[Law]
     show_poly = growth == "polynomial" or growth == "inconclusive"
     show_exp = growth == "exponential" or (growth == "inconclusive" and not decreasing)
     if show_exp:
-        base = math.exp(eth[jb])
+        base = _safe(math.exp, eth[jb], math.inf)
         if intervals:
             base_ci = _ci_from(el, data, eth, ell_, fits[e_name], jb, math.exp)
         if stretched_ok:
@@ -1221,7 +1230,7 @@ def fit_growth(sizes, costs, censored=None, *, repeats=None, laws: Sequence[Law]
     m, _ = ll_law.mu(lth[None, :], _features(probe))
     m = m[0]
     local_degree = float((m[1] - m[0]) / (math.log(probe[1]) - math.log(probe[0])))
-    local_base = float(math.exp(m[3] - m[2]))
+    local_base = float(_safe(math.exp, m[3] - m[2], math.inf))
 
     next_sizes, n_more, _delta = _next_sizes(raw[lp_name][0], fits[lp_name], raw[le_name][0],
                                              fits[le_name], n, noise, cap)

@@ -70,7 +70,7 @@ from typing import Any, Callable, Iterable, Sequence
 from profiler.records import CurveSpec, Point
 
 __all__ = ["Timing", "time_queries", "StudyContext", "CurveOutcome", "run_curve",
-           "check_answers", "worker_main", "worker_env"]
+           "check_answers", "worker_main", "worker_env", "prepare_launcher"]
 
 MIB = 1 << 20
 #: Fraction of the point cap the worker plans to use itself (the rest is messaging headroom).
@@ -1107,6 +1107,31 @@ class _CurveDriver:
 
 class _RealizeFailed(Exception):
     pass
+
+
+def prepare_launcher(study_ctx: StudyContext, curves: Sequence[CurveSpec] = ()) -> str:
+    """Start the study's preloaded launcher now rather than on the first worker request.
+
+    ``run_study`` calls this inside its launcher scope before the budget clock starts, so that
+    the zygote's one-off imports (seconds of CPU) are not charged to the first curves' shares.
+    Returns the launcher the workers will use (``"fork-preloaded"`` or ``"spawn"``); never
+    raises (a zygote that cannot start means spawned workers, as always).
+    """
+    from profiler import zygote
+
+    if zygote.launcher_mode(study_ctx.launcher) == "spawn" or not zygote.is_supported():
+        return "spawn"
+    z, _why = zygote.acquire(python=study_ctx.python, threads=study_ctx.threads,
+                             sys_path=tuple(study_ctx.sys_path),
+                             env=worker_env(study_ctx.threads))
+    if z is None:
+        return "spawn"
+    try:
+        if any(zygote.is_builtin_family(c.family) for c in curves):
+            z.preload_families()
+    finally:
+        zygote.release(z)
+    return "fork-preloaded"
 
 
 def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,

@@ -140,7 +140,7 @@ def run_study(spec: StudySpec, *, store: str | Path = "reports/infercost.sqlite"
     ``point_start``, ``point``, ``curve_done``, ``study_done``.
     """
     from profiler.environment import capture_environment
-    from profiler.harness import kill_all_workers, run_curve
+    from profiler.harness import kill_all_workers, prepare_launcher, run_curve
     from profiler.store import Store
     from profiler.zygote import launcher_scope
 
@@ -157,6 +157,9 @@ def run_study(spec: StudySpec, *, store: str | Path = "reports/infercost.sqlite"
         environment = capture_environment(seed=spec.seed, threads=spec.threads)
         study_id = st.open_study(spec, environment, resume=resume)
         ctx = study_context(spec, study_id, quick=quick)
+        if dask is None:
+            # The launcher's one-off imports happen before the budget clock starts.
+            prepare_launcher(ctx, spec.curves)
         stored: dict[int, list[Point]] = {}
         for p in st.points(study_id):
             stored.setdefault(p.curve, []).append(p)

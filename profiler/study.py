@@ -271,7 +271,11 @@ class DefaultCurve:
     """One row of the default study's table (see :data:`DEFAULT_CURVES`).
 
     ``levels`` expands into one curve per level; ``max_size_quick`` replaces ``max_size`` under
-    ``--quick``; ``quick`` False drops the row from the quick study.
+    ``--quick``; ``quick`` False drops the row from the quick study, and ``quick_levels`` (when
+    given) keeps only those of its levels there. ``seconds`` is a rough wall time of one of its
+    curves on a quiet 2-core machine: curves run cheapest first, so that what cheap curves leave
+    of their budget share passes to the dear ones (:class:`profiler.runner.BudgetPool` gives a
+    starting curve an equal share of what is left, and the last ones all the time left).
     """
 
     family: str
@@ -283,43 +287,67 @@ class DefaultCurve:
     min_size: int
     max_size: int
     max_size_quick: int
-    queries: int = 10
+    queries: int = 8
     params: tuple[tuple[str, Any], ...] = ()
     quick: bool = True
+    quick_levels: tuple[str, ...] | None = None
+    seconds: float = 4.0
 
 
 _A, _I, _C = "associational", "interventional", "counterfactual"
 
 #: The built-in default study: every family, every level it expresses, exact and sampling where
-#: offered, both axes. Sizes are chosen so each curve gets >= 6 sizes spanning >= 8x within its
-#: share of the budget on a 2-core machine (an auto schedule grows by 1.5x per point: 6 sizes
-#: span ~7.6x, 8 sizes ~17x). Tune by editing the size columns (README "Tuning the default study").
+#: offered, both axes. Each row's size range is chosen so that its curve gets >= 6 uncensored
+#: sizes spanning >= 8x (an auto schedule grows by 1.5x per point: 6 sizes span ~7.6x, 8 sizes
+#: ~17x) and ends by its own schedule (maximum size, the time cap, or a verdict) well inside its
+#: share of the budget on a quiet 2-core machine; points are cheap (8-20 queries, largest points
+#: a few hundred milliseconds, reference checks included). Measured on a loaded 2-core machine
+#: (load average 2-4): about 110 s of CPU for the whole study, 26 curves, every one with 7-14
+#: uncensored sizes over 10-128x. Curves run cheapest first (the ``seconds`` column).
 DEFAULT_CURVES: tuple[DefaultCurve, ...] = (
-    # bayesnet: polynomial on chains (treewidth 1), d**sqrt(n) on k x k grids, d**2 per step on
-    # the mechanism axis (states per variable).
-    DefaultCurve("bayesnet", (_A, _I), "exact", "graph", "chain", 2, 4, 512, 128),
-    DefaultCurve("bayesnet", (_A, _I), "exact", "graph", "grid", 2, 4, 144, 64),
-    DefaultCurve("bayesnet", (_A, _I), "exact", "mechanism", "chain", 8, 2, 48, 24),
-    DefaultCurve("bayesnet", (_A, _I), "sampling", "graph", "chain", 2, 4, 256, 96,
-                 params=(("n_samples", 500),)),
-    # circuit: one pass, linear in edges, on both axes.
-    DefaultCurve("circuit", (_A,), "exact", "graph", "balanced", 4, 4, 512, 128),
-    DefaultCurve("circuit", (_A,), "exact", "mechanism", "balanced", 8, 2, 64, 24),
-    # neural_scm: exact enumeration is exponential in the variables, polynomial in the width.
-    DefaultCurve("neural_scm", (_A, _I, _C), "exact", "graph", "chain", 4, 2, 16, 16),
-    DefaultCurve("neural_scm", (_A, _C), "exact", "mechanism", "chain", 4, 2, 96, 32,
-                 quick=True),
-    DefaultCurve("neural_scm", (_A, _I, _C), "sampling", "graph", "chain", 4, 2, 96, 32,
-                 params=(("n_samples", 300),), quick=False),
-    # linear_scm: closed-form Gaussian algebra, at most cubic in the variables, linear in-degree.
-    DefaultCurve("linear_scm", (_A, _I, _C), "exact", "graph", "chain", 2, 4, 384, 128),
-    DefaultCurve("linear_scm", (_C,), "exact", "mechanism", "random", 48, 1, 24, 12),
+    # bayesnet: linear on chains (treewidth 1: degree ~1 in work and time), d**sqrt(n) on k x k
+    # grids (stretched exponential in the number of variables), d**2 per factor on the
+    # mechanism axis (states per variable).
+    DefaultCurve("bayesnet", (_A, _I), "exact", "graph", "chain", 2, 8, 512, 128,
+                 queries=12, seconds=8, quick_levels=(_A,)),
+    # Three states per variable on the grid: 3**k per elimination step on a k x k grid, steep
+    # enough to tell from a polynomial below the cap; 32 queries, because the work of one
+    # query depends strongly on where its target and evidence sit (pruning).
+    DefaultCurve("bayesnet", (_A, _I), "exact", "graph", "grid", 3, 4, 144, 81,
+                 queries=32, seconds=7, quick_levels=(_A,)),
+    DefaultCurve("bayesnet", (_A, _I), "exact", "mechanism", "chain", 8, 2, 64, 24,
+                 queries=12, seconds=2, quick=False),
+    DefaultCurve("bayesnet", (_A, _I), "sampling", "graph", "chain", 2, 4, 128, 48,
+                 seconds=4, params=(("n_samples", 500),), quick=False),
+    # circuit: one pass, linear in edges, on both axes; and one compiled from a bayesnet chain
+    # (the compiled circuit grows linearly with the chain).
+    DefaultCurve("circuit", (_A,), "exact", "graph", "balanced", 4, 8, 512, 128, seconds=4),
+    DefaultCurve("circuit", (_A,), "exact", "mechanism", "balanced", 8, 2, 20, 16, seconds=5,
+                 quick=False),
+    DefaultCurve("circuit", (_A,), "exact", "graph", "chain", 2, 8, 256, 96,
+                 seconds=4.5, params=(("source", "bayesnet"),), quick=False),
+    # neural_scm: exact enumeration is exponential in the variables (two exogenous states each,
+    # so the base is ~2 and the curve reaches ~16 variables inside the cap), polynomial in the
+    # hidden width; sampling is polynomial in the variables.
+    DefaultCurve("neural_scm", (_A, _I, _C), "exact", "graph", "chain", 4, 1, 20, 14,
+                 queries=20, seconds=4.5, params=(("n_exogenous", 2),), quick_levels=(_C,)),
+    DefaultCurve("neural_scm", (_A, _I, _C), "exact", "mechanism", "chain", 4, 2, 128, 32,
+                 queries=12, seconds=3, quick_levels=(_C,)),
+    DefaultCurve("neural_scm", (_A, _I, _C), "sampling", "graph", "chain", 4, 2, 64, 24,
+                 seconds=3, params=(("n_samples", 300),), quick=False),
+    # linear_scm: closed-form Gaussian algebra, at most cubic in the variables, linear in the
+    # in-degree.
+    DefaultCurve("linear_scm", (_A, _I, _C), "exact", "graph", "chain", 2, 8, 1024, 256,
+                 seconds=4.5, quick_levels=(_C,)),
+    DefaultCurve("linear_scm", (_A, _I, _C), "exact", "mechanism", "random", 48, 1, 24, 12,
+                 seconds=2, quick_levels=(_C,)),
 )
 
-#: Study-level settings of the default study (full, quick).
+#: Study-level settings of the default study (full, quick). The budget is wall time of
+#: measuring; starting the preloaded worker launcher comes before it (a few seconds).
 DEFAULT_SETTINGS = {
-    False: {"name": "default", "budget_s": 90.0, "point_timeout_s": 2.0},
-    True: {"name": "default-quick", "budget_s": 25.0, "point_timeout_s": 1.0},
+    False: {"name": "default", "budget_s": 100.0, "point_timeout_s": 2.0},
+    True: {"name": "default-quick", "budget_s": 20.0, "point_timeout_s": 1.0},
 }
 
 
@@ -329,7 +357,8 @@ def default_study(*, quick: bool = False) -> StudySpec:
     Parameters
     ----------
     quick
-        A smaller study (rows marked ``quick``, smaller maximum sizes, 25 s budget).
+        A smaller study (rows marked ``quick``, their ``quick_levels``, smaller maximum sizes,
+        a 20 s budget).
 
     Returns
     -------
@@ -341,14 +370,15 @@ def default_study(*, quick: bool = False) -> StudySpec:
     settings = DEFAULT_SETTINGS[bool(quick)]
     curves: list[CurveSpec] = []
     missing: list[str] = []
-    for row in DEFAULT_CURVES:
+    for row in sorted(DEFAULT_CURVES, key=lambda r: r.seconds):  # stable: table order on ties
         if quick and not row.quick:
             continue
         if not _family_available(row.family):
             if row.family not in missing:
                 missing.append(row.family)
             continue
-        for level in row.levels:
+        levels = row.quick_levels if quick and row.quick_levels is not None else row.levels
+        for level in levels:
             curves.append(CurveSpec(
                 family=row.family, level=level, method=row.method, axis=row.axis,
                 topology=row.topology, fixed=row.fixed, sizes=None, queries=row.queries,

@@ -370,6 +370,22 @@ class Zygote:
                 os.close(extra)
         return ForkedProcess(self, pid, pidfd, os.fdopen(in_w, "wb"), os.fdopen(out_r, "rb"))
 
+    def preload_families(self, timeout: float = START_TIMEOUT_S) -> None:
+        """Have the zygote import :data:`PRELOAD_FAMILIES` and the built-in families now."""
+        if "families" in self.groups or not self.alive or self.sock is None:
+            return
+        with self._request_lock:
+            try:
+                self.sock.send(json.dumps({"op": "preload", "groups": ["families"]}).encode())
+            except OSError as exc:
+                raise ZygoteUnavailable(f"preload request failed: {exc}") from None
+            reply, fds = self._next_reply(timeout)
+        for fd in fds:
+            with contextlib.suppress(OSError):
+                os.close(fd)
+        for group, secs in (reply.get("imported") or {}).items():
+            self.groups[str(group)] = float(secs)
+
     def _next_reply(self, timeout: float) -> tuple[dict, list[int]]:
         end = time.monotonic() + timeout
         with self._reply_cv:
@@ -691,12 +707,6 @@ def _serve(sock: socket.socket) -> None:
             msg = {"op": "garbled"}
         if msg.get("op") == "quit":
             _die(children)
-        if msg.get("op") != "fork" or len(fds) != 3:
-            for fd in fds:
-                with contextlib.suppress(OSError):
-                    os.close(fd)
-            _send(sock, {"op": "refused", "error": f"bad request {msg.get('op')!r}"})
-            continue
         imported = {}
         for group in msg.get("groups") or ():
             if group == "families" and group not in groups:
@@ -704,6 +714,18 @@ def _serve(sock: socket.socket) -> None:
                 _preload(PRELOAD_FAMILIES, families=True)
                 groups.add(group)
                 imported[group] = time.perf_counter() - t0
+        if msg.get("op") == "preload":
+            for fd in fds:
+                with contextlib.suppress(OSError):
+                    os.close(fd)
+            _send(sock, {"op": "preloaded", "imported": imported})
+            continue
+        if msg.get("op") != "fork" or len(fds) != 3:
+            for fd in fds:
+                with contextlib.suppress(OSError):
+                    os.close(fd)
+            _send(sock, {"op": "refused", "error": f"bad request {msg.get('op')!r}"})
+            continue
         reap()  # children that ended during the imports
         zygote_pid = os.getpid()
         try:

@@ -13,6 +13,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import math
+
 import numpy as np
 
 from model_zoo.base import make_rng
@@ -26,6 +28,11 @@ __all__ = ["scopes", "is_smooth", "is_decomposable", "DeterminismResult", "deter
 #: (16 binary variables).
 EXHAUSTIVE_LIMIT = 1 << 16
 
+
+
+def _n_assignments(cards) -> int:
+    """Number of complete assignments, exactly (a Python int: 2**2000 does not overflow)."""
+    return math.prod(int(c) for c in cards) if len(cards) else 1
 
 def scopes(circuit: Circuit) -> list[int]:
     """Scope of every node as a bitset (bit v set when variable v is below). O(n_edges) ints."""
@@ -139,7 +146,7 @@ def determinism(circuit: Circuit, *, n_samples: int = 512, seed: int = 0,
     if cached is not None:
         return cached
     cards = circuit.cards
-    total = int(np.prod(cards, dtype=np.float64)) if cards else 1
+    total = _n_assignments(cards)
     chunk = max(1, int(1e7 // max(circuit.n_nodes + circuit.n_edges, 1)))
     if total <= limit:
         allx = _all_assignments(cards)
@@ -234,7 +241,7 @@ def joint_table(circuit: Circuit, *, limit: int = EXHAUSTIVE_LIMIT,
     if "joint" in circuit._cache:
         return circuit._cache["joint"]
     cards = circuit.cards
-    total = int(np.prod(cards, dtype=np.float64)) if cards else 1
+    total = _n_assignments(cards)
     if total > limit or (circuit.n_edges + circuit.n_nodes) * total > max_elements:
         return None
     values = _node_values_plain(circuit, _all_assignments(cards), "sum")

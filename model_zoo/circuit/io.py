@@ -114,14 +114,15 @@ def parse_circuit(data: Any, *, where: str = "circuit") -> Circuit:
     leaf_info: dict[int, tuple[int, list[float]]] = {}
     for i, node in enumerate(nodes):
         place = node_place(i)
-        kind = _KINDS.get(node.get("type"))  # type: ignore[arg-type]
+        kind_name = node.get("type")
+        kind = _KINDS.get(kind_name) if isinstance(kind_name, str) else None
         if kind is None:
             raise InputError.at(where, f"{place}.type", "'sum', 'product' or 'leaf'",
                                 node.get("type"))
         kinds.append(kind)
         if kind == LEAF:
             var = node.get("variable")
-            if var not in var_index:
+            if not isinstance(var, str) or var not in var_index:
                 raise InputError.at(where, f"{place}.variable", "a name from 'variables'", var)
             v = var_index[var]
             p = node.get("probabilities")

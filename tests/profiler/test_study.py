@@ -182,3 +182,39 @@ def test_default_curves_leave_room_for_a_verdict():
     spec = default_study()
     assert len({c.key() for c in spec.curves}) == len(spec.curves)
     assert default_study(quick=True).budget_s < 30 <= default_study().budget_s <= 120
+
+
+def test_default_study_has_the_curves_its_verdicts_are_judged_on():
+    """The curves whose verdicts theory fixes are in the default study: bayesnet exact on chain
+    and grid (both levels), its mechanism axis and sampling; circuit on both axes plus one
+    compiled from a bayesnet; neural_scm exact on the graph axis on a shape whose ancestral sets
+    grow linearly (chain or layered: on a tree they are root paths and pruning makes the count
+    polynomial) and on the mechanism axis at all three levels; linear_scm at all three levels
+    on both axes."""
+    keys = {(c.family, c.level, c.method, c.axis, c.topology) for c in default_study().curves}
+    for level in ("associational", "interventional"):
+        for axis, top in (("graph", "chain"), ("graph", "grid"), ("mechanism", "chain")):
+            assert ("bayesnet", level, "exact", axis, top) in keys
+        assert ("bayesnet", level, "sampling", "graph", "chain") in keys
+    assert {("circuit", "associational", "exact", axis) for axis in ("graph", "mechanism")} <= \
+        {k[:4] for k in keys}
+    assert any(c.family == "circuit" and dict(c.params).get("source") == "bayesnet"
+               for c in default_study().curves)
+    for level in ("associational", "interventional", "counterfactual"):
+        assert any(k[:4] == ("neural_scm", level, "exact", "graph") and k[4] in ("chain", "layered")
+                   for k in keys)
+        assert ("neural_scm", level, "exact", "mechanism") in {k[:4] for k in keys}
+        assert ("neural_scm", level, "sampling", "graph") in {k[:4] for k in keys}
+        for axis in ("graph", "mechanism"):
+            assert ("linear_scm", level, "exact", axis) in {k[:4] for k in keys}
+
+
+def test_quick_levels_are_levels_of_their_row():
+    """--quick keeps a subset of each quick row's levels, never a level the row lacks."""
+    quick = default_study(quick=True)
+    for row in DEFAULT_CURVES:
+        if row.quick_levels is not None:
+            assert set(row.quick_levels) <= set(row.levels), row
+    full_keys = {c.key() for c in default_study().curves}
+    assert {c.key() for c in quick.curves} <= full_keys
+    assert 0 < len(quick.curves) < len(default_study().curves)

@@ -509,10 +509,6 @@ def resolve_family(name: str):
 
 
 # ---------------------------------------------------------------------------- found by fuzzing
-@pytest.mark.xfail(strict=True, raises=TypeError,
-                   reason="model_zoo/circuit/io.py parse_circuit looks up node 'type' and leaf "
-                          "'variable' in dicts before checking they are strings: a list there "
-                          "raises TypeError (unhashable) instead of InputError")
 @pytest.mark.parametrize("field", ["type", "variable"])
 def test_circuit_node_fields_of_the_wrong_type_are_input_errors(tmp_path, seeds, field):
     """Found by ``make fuzz``: a circuit node whose ``type`` or ``variable`` is a list."""

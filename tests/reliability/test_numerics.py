@@ -97,10 +97,6 @@ def test_circuit_zero_probability_evidence_is_reported_not_nan(circuit_family, t
     assert _zero_message(str(info.value)), str(info.value)
 
 
-@pytest.mark.xfail(strict=True, raises=OverflowError,
-                   reason="model_zoo/circuit/checks.py determinism(): int(np.prod(cards, "
-                          "dtype=float64)) overflows for 2,000 variables (2**2000 -> inf), so "
-                          "every MPE query on a large circuit raises OverflowError")
 def test_every_query_the_family_asks_at_2000_variables_answers_finite(circuit_family,
                                                                       big_circuit):
     """The family's own query mix (probability, likelihood, MPE) at 2,000 variables: finite."""
