@@ -19,7 +19,7 @@ It imports only the fitter, the audit comparison and the records; no model is ev
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Iterable, Sequence
 
 from profiler.errors import FitError
@@ -262,12 +262,24 @@ def analyse_study(result: StudyResult, *, seed: int = 0) -> list[CurveAnalysis]:
         key = None
     if key is not None and key in _RECENT:
         return list(_RECENT[key])
-    out = [analyse_curve(c, seed=seed) for c in sorted(result.curves, key=lambda c: c.index)]
+    out = [analyse_curve(_on_one_time_scale(c, result), seed=seed)
+           for c in sorted(result.curves, key=lambda c: c.index)]
     if key is not None:
         while len(_RECENT) >= _RECENT_MAX:
             _RECENT.pop(next(iter(_RECENT)))
         _RECENT[key] = out
     return list(out)
+
+
+def _on_one_time_scale(curve: CurveResult, result: StudyResult) -> CurveResult:
+    """The curve with times from several machines put on the study machine's scale (a curve
+    measured on one machine, the usual case, is returned as it is)."""
+    from profiler.machines import normalise_times
+
+    calibration = (result.environment.get("calibration") or {}) if result.environment else {}
+    reference = calibration.get("seconds") if isinstance(calibration, dict) else None
+    points = normalise_times(curve.points, result.workers or {}, reference_seconds=reference)
+    return curve if list(points) == list(curve.points) else replace(curve, points=tuple(points))
 
 
 def competing_laws(verdict) -> list[str]:

@@ -125,6 +125,10 @@ def run(
                 changes[key] = value
         if changes:
             spec = replace(spec, **changes)
+        if dask is not None:
+            from profiler.cluster import parse_address
+
+            parse_address(dask)  # a bad address is refused before anything is stored
         out_dir = out if out is not None else Path("reports") / spec.name
         _run_with_progress(spec, store=store, out=out_dir, resume=resume, dask=dask,
                            quiet=quiet, as_json=as_json)

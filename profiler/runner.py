@@ -163,8 +163,8 @@ def run_study(spec: StudySpec, *, store: str | Path = "reports/infercost.sqlite"
         stored: dict[int, list[Point]] = {}
         for p in st.points(study_id):
             stored.setdefault(p.curve, []).append(p)
-        if dask is not None:
-            _run_curves_dask(dask, ctx, spec, stored)
+        n_dask = (_run_curves_dask(dask, ctx, spec, stored, st, study_id, on_event)
+                  if dask is not None else 0)
         n = len(spec.curves)
         slots = _n_slots(n, workers)
         pool = BudgetPool(spec.budget_s, n_curves=n, n_slots=slots)
@@ -201,8 +201,8 @@ def run_study(spec: StudySpec, *, store: str | Path = "reports/infercost.sqlite"
         emit({"event": "study_start", "name": spec.name, "n_curves": n, "n_parallel": slots,
               "budget_s": spec.budget_s, "cap": spec.point_timeout_s, "resumed": resume})
         executor = ThreadPoolExecutor(max_workers=slots, thread_name_prefix="infercost-curve")
-        futures = [executor.submit(task, i) for i in range(n)]
-        n_new = 0
+        futures = [executor.submit(task, i) for i in range(n) if dask is None]
+        n_new = n_dask
         try:
             while True:
                 try:
@@ -326,11 +326,19 @@ class _Progress:
         return float(min(left, max(0.0, mean * todo / self.slots)))
 
 
-def _run_curves_dask(address: str, ctx: Any, spec: StudySpec, stored: dict) -> None:
-    """Hook for the Dask scale-out (issue 8): one task per curve calling
-    :func:`profiler.harness.run_curve` inside a Dask worker, points streamed back to this
-    process, which alone writes the store. Not implemented yet."""
-    raise NotImplementedError(f"--dask {address}: Dask scale-out is not implemented yet")
+def _run_curves_dask(address: str, ctx: Any, spec: StudySpec, stored: dict, st: Any,
+                     study_id: str, on_event: Callable[[Event], None] | None = None) -> int:
+    """The Dask scale-out (issue 8): :func:`profiler.cluster.store_curves_dask` runs one task per
+    curve (the harness's :func:`~profiler.harness.run_curve` inside a Dask worker) and stores
+    each point here as it arrives; returns the number of new points."""
+    from profiler.cluster import store_curves_dask
+
+    def emit(event: Event) -> None:
+        if on_event is not None:
+            on_event({"study_id": study_id, "eta_s": None, **event})
+
+    return store_curves_dask(address, ctx, spec, stored, store=st, study_id=study_id,
+                             emit=emit).n_new_points
 
 
 # ============================================================================ python -m

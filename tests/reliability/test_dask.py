@@ -342,9 +342,6 @@ def test_a_point_whose_process_was_never_recorded_uses_its_dask_workers_figure()
 
 
 # ---------------------------------------------------------------------------- through run_study
-@pytest.mark.xfail(raises=NotImplementedError, strict=False,
-                   reason="profiler.runner's --dask hook is not wired to profiler.cluster yet "
-                          "(see the issue-8 report); remove this marker once it is")
 def test_run_study_with_dask_local_2(tmp_path):
     """``run_study(spec, dask="local:2")`` (what ``infercost run --dask local:2`` calls): every
     point stored once, the Dask workers recorded, a resume measures nothing more."""
