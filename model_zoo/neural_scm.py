@@ -1046,6 +1046,7 @@ _DEFAULTS: dict[str, Any] = {
     "n_states": 2, "n_exogenous": 3, "depth": 1, "max_in_degree": 3, "n_confounders": None,
     "confounder_states": 2, "n_samples": 2000, "seed": 0, "max_worlds": MAX_WORLDS,
     "reference_max_variables": 12, "min_evidence_frequency": 0.05, "prune": True,
+    "target_choice": "any",
 }
 
 
@@ -1079,6 +1080,11 @@ class NeuralSCMFamily(FamilyBase):
         Generated evidence is kept when at least this fraction of simulated worlds matches it.
     prune : bool, default True
         Restrict engines to the query's ancestral set (exact answers are unchanged).
+    target_choice : {"any", "last"}, default "any"
+        ``"last"`` asks every generated query about the last variable in topological order (the
+        one farthest downstream, whose ancestral set is largest), so that cost along a growth
+        curve is not blurred by where a random target happened to fall; ``"any"`` draws targets
+        from the second half of the order.
     """
 
     name = "neural_scm"
@@ -1089,6 +1095,12 @@ class NeuralSCMFamily(FamilyBase):
 
     def _p(self, key: str) -> Any:
         return self.params.get(key, _DEFAULTS[key])
+
+    def _target_choice(self) -> str:
+        choice = self._p("target_choice")
+        if choice not in ("any", "last"):
+            raise InputError.at("neural_scm", "target_choice", "'any' or 'last'", choice)
+        return choice
 
     # -- building ---------------------------------------------------------------------------
     def realizable(self, size: Size, *, topology: str) -> Size:
@@ -1151,6 +1163,7 @@ class NeuralSCMFamily(FamilyBase):
             return pools[do]
 
         late = list(range(nv // 2, nv)) or [0]
+        last_only = self._target_choice() == "last"
         has_children = [i for i in range(nv) if scm.children[i]]
         out: list[Query] = []
         for _ in range(n):
@@ -1164,6 +1177,8 @@ class NeuralSCMFamily(FamilyBase):
             else:
                 candidates = late
             yi = int(rng.choice(candidates))
+            if last_only and (nv - 1) in candidates:
+                yi = nv - 1
             y_state = int(rng.integers(scm.card(yi)))
             if level is Level.COUNTERFACTUAL:
                 fact = pool(())
