@@ -157,8 +157,11 @@ def _run_with_progress(spec, *, store: Path, out: Path, resume: bool, dask: Opti
     console = _console()
     rows = _verdict_rows(result)
     if rows:
-        columns = list(rows[0].keys())
-        console.print(_table(f"Verdicts — study {spec.name}", columns,
+        headings = {"curve": "curve", "growth": "by work", "growth_time": "by time",
+                    "confidence": "confidence", "agreement": "theory", "points": "points",
+                    "flags": "flags"}
+        columns = [c for c in headings if c != "flags" or any(r.get("flags") for r in rows)]
+        console.print(_table(f"Verdicts — study {spec.name}", [headings[c] for c in columns],
                              [[r.get(c) for c in columns] for r in rows]))
     console.print(f"Report: {out / 'index.html'}  (also summary.md, results.json, points.csv)")
     console.print("Growth classes are empirical evidence on the measured range, not proofs; "

@@ -133,8 +133,8 @@ def verdict_rows(analyses: Sequence[CurveAnalysis]) -> list[dict[str, str]]:
         main = a.work if a.work is not None else a.time
         rows.append({
             "curve": a.key,
-            "growth": format_growth(a.work),
-            "growth_time": format_growth(a.time),
+            "growth": format_growth(a.work, next_sizes=False),
+            "growth_time": format_growth(a.time, next_sizes=False),
             "confidence": format_confidence(main),
             "theory": a.theory or "—",
             "agreement": a.agreement,
