@@ -262,8 +262,16 @@ def _size_label(curve: CurveResult) -> str:
     return f"mechanism size n ({curve.mechanism_knob or 'family knob'})"
 
 
-def _work_label(unit: str) -> str:
-    return f"work per query ({unit or 'operations'})"
+def _short_unit(unit: str, method: str = "") -> str:
+    """The unit's short name, for this curve's method when the family states one per method
+    ("table entries multiplied (exact); CPT entries read ... (sampling: ...)")."""
+    parts = [p.strip() for p in (unit or "operations").split(";") if p.strip()]
+    chosen = next((p for p in parts if f"({method}" in p), parts[0]) if parts else "operations"
+    return chosen.split(" (")[0]
+
+
+def _work_label(unit: str, method: str = "") -> str:
+    return f"work per query ({_short_unit(unit, method)})"
 
 
 def _series(curve: CurveResult, kind: str):
@@ -391,7 +399,7 @@ def _draw_cost_panel(ax, rax, curve: CurveResult, verdict, kind: str) -> None:
     rax.set_ylabel("ln(measured / law)", fontsize=8)
     rax.set_xlabel(_size_label(curve))
     if kind == "work":
-        ax.set_ylabel(_work_label(curve.work_unit))
+        ax.set_ylabel(_work_label(curve.work_unit, curve.spec.method))
         ax.set_title(_wrap(f"by work — {format_growth(verdict, next_sizes=False)}"),
                      fontsize=10, loc="left")
     else:
@@ -627,7 +635,7 @@ def _verdict_table(analyses: Sequence[CurveAnalysis]) -> str:
             f"<td class=\"note\"><span class=\"{agree_cls}\">{_e(a.agreement)}</span>"
             f"<br><span class=\"muted\">{_e(a.agreement_note)}</span></td>"
             f"<td class=\"note\">{_e(_points_text(a.curve))}{flags}</td>"
-            f"<td>{_e(a.curve.work_unit or 'operations')}</td></tr>")
+            f"<td>{_e(_short_unit(a.curve.work_unit, a.curve.spec.method))}</td></tr>")
     return (f"<div class=\"scroll\"><table class=\"verdicts\" id=\"verdict-table\">"
             f"<thead>{head}</thead><tbody>{''.join(body)}</tbody></table></div>")
 
