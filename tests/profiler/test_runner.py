@@ -208,7 +208,3 @@ def _alive(pid: int) -> bool:
         return False
     return state != "Z"
 
-
-def test_dask_hook_is_not_implemented_yet(tmp_path):
-    with pytest.raises(NotImplementedError):
-        run_study(small_study(name="dask"), store=tmp_path / "s.sqlite", dask="local:1")
