@@ -104,9 +104,10 @@ class Timing:
     answers: tuple = field(default=(), repr=False, compare=False)
 
 
-def _answerer(family: Any, instance: Any, queries: Sequence[Any], method: str) -> Callable[[], list]:
+def _answerer(family: Any, instance: Any, queries: Sequence[Any], method: str,
+              batched: bool) -> Callable[[], list]:
     batch = getattr(family, "answer_batch", None)
-    if callable(batch):
+    if batched and callable(batch):
         return lambda: batch(instance, queries, method=method)
     return lambda: [family.answer(instance, q, method=method) for q in queries]
 
@@ -157,12 +158,17 @@ def time_queries(family: Any, instance: Any, queries: Sequence[Any], *, method: 
                  min_repeat_seconds: float = 0.01, min_repeats: int = 5, max_repeats: int = 20,
                  spread_limit: float = 0.1, deadline: float | None = None,
                  measure_memory: bool = True,
-                 on_first_pass: Callable[[float], None] | None = None) -> Timing:
+                 on_first_pass: Callable[[float], None] | None = None,
+                 batched: bool = False) -> Timing:
     """Time answering ``queries`` on ``instance``: median, min, max and spread per query.
 
     Runs in the calling process (the harness calls it inside a worker; the audit calls it
-    directly). One *loop* answers every query once (``answer_batch`` when the family has it);
-    one *repeat* runs ``loops`` loops back to back.
+    directly). One *loop* answers every query once; one *repeat* runs ``loops`` loops back to
+    back. By default each query is answered alone (``answer``): the time is a per-query latency,
+    the unit work is counted in. With ``batched`` the family's ``answer_batch`` answers them
+    together; its throughput depends on how many queries share a shape, which varies from point
+    to point with random queries and would blur a growth curve (batched throughput is what
+    ``make bench`` measures).
 
     Parameters
     ----------
@@ -199,7 +205,7 @@ def time_queries(family: Any, instance: Any, queries: Sequence[Any], *, method: 
     n = len(queries)
     if n == 0:
         raise ValueError("time_queries needs at least one query")
-    fn = _answerer(family, instance, queries, method)
+    fn = _answerer(family, instance, queries, method, batched)
     inf = math.inf if deadline is None else deadline
     rss0 = _maxrss_bytes()
 
