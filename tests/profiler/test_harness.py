@@ -61,7 +61,8 @@ def test_time_queries_keeps_to_its_deadline():
     assert t.seconds_median == pytest.approx(t.first_pass_seconds / 3)
 
 
-def test_time_queries_uses_answer_batch_when_present():
+def test_time_queries_answers_one_at_a_time_unless_batched():
+    """Per-query latency by default (the unit work counts in); answer_batch only when asked."""
     class Batch(LinearFamily):
         calls = 0
 
@@ -72,8 +73,11 @@ def test_time_queries_uses_answer_batch_when_present():
     fam = Batch()
     inst = fam.build(Size(4, 2), topology="chain", seed=1)
     qs = fam.queries(inst, Level.ASSOCIATIONAL, n=4, seed=2)
+    time_queries(fam, inst, qs, method="exact", min_repeat_seconds=0.001, min_repeats=3,
+                 max_repeats=3)
+    assert Batch.calls == 0
     t = time_queries(fam, inst, qs, method="exact", min_repeat_seconds=0.001, min_repeats=3,
-                     max_repeats=3)
+                     max_repeats=3, batched=True)
     assert Batch.calls >= 1 + t.repeats * t.loops
 
 
