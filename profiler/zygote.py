@@ -563,15 +563,9 @@ atexit.register(shutdown_all)
 
 # ============================================================================ the zygote process
 def _parent_death_signal() -> None:
-    if not sys.platform.startswith("linux"):
-        return
-    try:
-        import ctypes
+    from profiler.harness import _set_parent_death_signal  # the same prctl as a spawned worker
 
-        libc = ctypes.CDLL(None, use_errno=True)
-        libc.prctl(1, int(signal.SIGKILL), 0, 0, 0)  # PR_SET_PDEATHSIG = 1
-    except (OSError, AttributeError):
-        pass
+    _set_parent_death_signal()
 
 
 def is_builtin_family(family: str) -> bool:
