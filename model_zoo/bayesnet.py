@@ -554,8 +554,9 @@ class BayesNetFamily(FamilyBase):
         networks of at most this many variables (the bound costs seconds beyond).
     target_choice : {"any", "last"}, default "any"
         ``"last"`` asks every generated query about the last variable in topological order (the
-        one farthest downstream, whose ancestral set is the largest), so that cost along a growth
-        curve is not blurred by where a random target fell; ``"any"`` draws any variable.
+        one farthest downstream, whose ancestral set is the largest) and intervenes on the first
+        variable, so that cost along a growth curve is not blurred by where a random target or
+        intervention fell; ``"any"`` draws any variable.
     """
 
     name = "bayesnet"
@@ -646,7 +647,8 @@ class BayesNetFamily(FamilyBase):
             rest = [names[i] for i in picks[1:]]
             do: dict[str, int] = {}
             if interventional:
-                x = rest.pop(0)
+                # "last": intervene upstream-most, so the cut does not decide the query's cost
+                x = rest.pop(rest.index(names[0]) if choice == "last" else 0)
                 do[x] = int(rng.integers(idx.card[x]))
             n_ev = int(rng.integers(0, min(3, len(rest)) + 1))
             ev_vars = rest[:n_ev]

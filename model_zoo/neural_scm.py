@@ -1082,9 +1082,10 @@ class NeuralSCMFamily(FamilyBase):
         Restrict engines to the query's ancestral set (exact answers are unchanged).
     target_choice : {"any", "last"}, default "any"
         ``"last"`` asks every generated query about the last variable in topological order (the
-        one farthest downstream, whose ancestral set is largest), so that cost along a growth
-        curve is not blurred by where a random target happened to fall; ``"any"`` draws targets
-        from the second half of the order.
+        one farthest downstream, whose ancestral set is largest) and intervenes on the first
+        variable that has children, so that cost along a growth curve is not blurred by where a
+        random target or intervention happened to fall; ``"any"`` draws targets from the second
+        half of the order and interventions at random.
     """
 
     name = "neural_scm"
@@ -1170,6 +1171,8 @@ class NeuralSCMFamily(FamilyBase):
             do: tuple = ()
             if level is not Level.ASSOCIATIONAL:
                 xi = int(rng.choice(has_children)) if has_children else int(rng.integers(nv))
+                if last_only and has_children:
+                    xi = has_children[0]  # upstream-most: its cut decides the ancestral set
                 do = ((xi, int(rng.integers(scm.card(xi)))),)
                 desc = sorted(_descendants(scm, {xi}))
                 late_desc = [d for d in desc if d >= nv // 2] or desc
