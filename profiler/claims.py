@@ -40,7 +40,6 @@ from __future__ import annotations
 
 import math
 import re
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Sequence
@@ -209,15 +208,10 @@ def load_claims(path: str | Path) -> list[Claim]:
     InputError
         Missing/unreadable file, bad TOML, or a bad field — one line naming file and field.
     """
+    from profiler.study import read_toml
+
     p = Path(path)
-    try:
-        data = tomllib.loads(p.read_text(encoding="utf-8"))
-    except FileNotFoundError as exc:
-        raise InputError(f"{p}: claims file not found") from exc
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"{p}: cannot read the claims file: {exc}") from exc
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{p}: not valid TOML: {exc}") from exc
+    data = read_toml(p, "claims file")
     extra = sorted(set(data) - {"claim", "title", "note", "study"})
     if extra:
         raise InputError.at(str(p), extra[0], "only [[claim]] tables (and title/note/study)",

@@ -23,7 +23,6 @@ Approximations, stated in every plan that uses them:
 from __future__ import annotations
 
 import math
-import tomllib
 from dataclasses import asdict, dataclass, fields
 from pathlib import Path
 from typing import Any, Sequence
@@ -185,16 +184,11 @@ def make_workload(path: str | Path | None = None, **overrides: Any) -> Workload:
     data: dict[str, Any] = {}
     where = "command line"
     if path is not None:
+        from profiler.study import read_toml
+
         p = Path(path)
         where = str(p)
-        try:
-            data = tomllib.loads(p.read_text(encoding="utf-8"))
-        except FileNotFoundError as exc:
-            raise InputError(f"{p}: workload file not found") from exc
-        except (OSError, UnicodeDecodeError) as exc:
-            raise InputError(f"{p}: cannot read the workload file: {exc}") from exc
-        except tomllib.TOMLDecodeError as exc:
-            raise InputError(f"{p}: not valid TOML: {exc}") from exc
+        data = read_toml(p, "workload file")
         if isinstance(data.get("workload"), dict):
             data = data["workload"]
     opts = {k: v for k, v in overrides.items() if v is not None}

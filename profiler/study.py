@@ -48,7 +48,7 @@ from model_zoo.base import AXES, METHODS, TOPOLOGIES, Level
 from profiler.errors import InputError
 from profiler.records import CurveSpec, StudySpec
 
-__all__ = ["load_study_file", "study_from_dict", "default_study", "quick_version",
+__all__ = ["load_study_file", "read_toml", "study_from_dict", "default_study", "quick_version",
            "DEFAULT_CURVES", "DefaultCurve", "STUDY_KEYS", "CURVE_KEYS", "check_name"]
 
 STUDY_KEYS = ("name", "description", "budget_s", "point_timeout_s", "memory_mb", "seed",
@@ -251,18 +251,30 @@ def load_study_file(path: str | Path) -> StudySpec:
     ...
     profiler.errors.InputError: ...s.toml: curve[0]: family: expected one of ...
     """
+    return study_from_dict(read_toml(path, "study file"), where=str(Path(path)))
+
+
+def read_toml(path: str | Path, what: str) -> dict[str, Any]:
+    """The table of a TOML file people write (study, claims, workload files).
+
+    Raises
+    ------
+    InputError
+        One line naming the file: missing or unreadable, not UTF-8, or a TOML syntax error.
+    """
     p = Path(path)
     try:
         raw = p.read_bytes()
+    except FileNotFoundError as exc:
+        raise InputError(f"{p}: cannot read the {what} (not found)") from exc
     except OSError as exc:
-        raise InputError(f"{p}: cannot read the study file ({exc.strerror or exc})") from exc
+        raise InputError(f"{p}: cannot read the {what} ({exc.strerror or exc})") from exc
     try:
-        doc = tomllib.loads(raw.decode("utf-8"))
+        return tomllib.loads(raw.decode("utf-8"))
     except UnicodeDecodeError as exc:
         raise InputError(f"{p}: not UTF-8 text (byte {exc.start})") from exc
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{p}: TOML syntax error: {' '.join(str(exc).split())}") from exc
-    return study_from_dict(doc, where=str(p))
 
 
 # ============================================================================ the default study
