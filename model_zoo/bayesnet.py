@@ -787,33 +787,41 @@ class BayesNetFamily(FamilyBase):
     def predicted_work(self, instance: BayesNetInstance, query: Query, *, method: str) -> float:
         """Exact: :func:`elimination_cost` of the plan's order on its interaction graph (no
         inference runs). Sampling: n_samples x (per-sample CPT entries read)."""
-        self.check_method(method)
-        idx = _index(instance)
-        parsed = _parse(idx, query)
-        if parsed.trivial is not None:
+        cost = self._cost_parts(instance, query, method)
+        if cost is None:
             return 0.0
         if method == "sampling":
-            _, per_sample = _lw_cost(idx, parsed)
+            _, per_sample = cost
             return float(int(self._p("n_samples", 2000)) * per_sample)
-        plan = _plan(instance, parsed)
-        total, _ = elimination_cost(plan.graph, plan.order, idx.card)
+        total, _ = cost
         return float(total)
 
     def predicted_bytes(self, instance: BayesNetInstance, query: Query, *,
                         method: str) -> float | None:
         """Exact: the largest product table x 8 bytes. Sampling: n_samples x (relevant
         variables + 1 weight) x 8 bytes."""
+        cost = self._cost_parts(instance, query, method)
+        if cost is None:
+            return 0.0
+        if method == "sampling":
+            relevant, _ = cost
+            return float(int(self._p("n_samples", 2000)) * (len(relevant) + 1) * 8)
+        _, largest = cost
+        return float(largest * 8)
+
+    def _cost_parts(self, instance: BayesNetInstance, query: Query, method: str):
+        """What both cost formulas read, without running inference: None for a trivial query;
+        for sampling (relevant variables, CPT entries read per sample); for exact (total,
+        largest) product-table entries of the plan's elimination order."""
         self.check_method(method)
         idx = _index(instance)
         parsed = _parse(idx, query)
         if parsed.trivial is not None:
-            return 0.0
+            return None
         if method == "sampling":
-            relevant, _ = _lw_cost(idx, parsed)
-            return float(int(self._p("n_samples", 2000)) * (len(relevant) + 1) * 8)
+            return _lw_cost(idx, parsed)
         plan = _plan(instance, parsed)
-        _, largest = elimination_cost(plan.graph, plan.order, idx.card)
-        return float(largest * 8)
+        return elimination_cost(plan.graph, plan.order, idx.card)
 
     def expected_growth(self, *, axis: str, topology: str, level: Level,
                         method: str) -> str | None:

@@ -28,22 +28,18 @@ import warnings
 
 import numpy as np
 
+from tests.perf.timing import median_seconds
+
 NETWORKS = ("asia", "child", "alarm", "insurance", "hailfinder", "win95pts", "pigs", "munin1")
 BATCH_NETWORKS = ("alarm", "win95pts")
 N_QUERIES = 12
 N_BATCH = 1000
+
 N_PGMPY_BATCH = 100
 PGMPY_MAX_S = 30.0
 TOL = 1e-9
 
 
-def _median_call(fn, repeats: int = 5) -> float:
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter_ns()
-        fn()
-        times.append((time.perf_counter_ns() - t0) * 1e-9)
-    return statistics.median(times)
 
 
 def _pgmpy_query(engine, net, target: str, target_value: int, evidence: dict) -> float:
@@ -98,7 +94,7 @@ def _single_rows(fam, name: str) -> list[dict]:
                      "goal": f"skipped: pgmpy took {first:.1f}s > {PGMPY_MAX_S:.0f}s on one query",
                      "met": None}]
         reps = 1 if first > 1.0 else 5
-        t_pg.append(_median_call(lambda: _pgmpy_query(engine, net, t, tv, ev), reps))
+        t_pg.append(median_seconds(lambda: _pgmpy_query(engine, net, t, tv, ev), reps))
 
     def cold(q):
         inst._cache.pop("plans", None)   # a query of a shape never seen before
@@ -106,10 +102,10 @@ def _single_rows(fam, name: str) -> list[dict]:
 
     ours_vals = [cold(q).value for q in queries]
     err = max(abs(a - b) for a, b in zip(ours_vals, ref))
-    t_cold = [_median_call(lambda: cold(q)) for q in queries]
+    t_cold = [median_seconds(lambda: cold(q)) for q in queries]
     for q in queries:
         fam.answer(inst, q, method="exact")
-    t_warm = [_median_call(lambda: fam.answer(inst, q, method="exact")) for q in queries]
+    t_warm = [median_seconds(lambda: fam.answer(inst, q, method="exact")) for q in queries]
     ok = err <= TOL
     rows = []
     for label, ours in (("single query, cold plan", t_cold), ("single query, cached plan", t_warm)):
@@ -151,7 +147,7 @@ def _batch_row(fam, name: str) -> dict:
         inst._cache.pop("plans", None)   # plan building is part of the batch's cost
         return fam.answer_batch(inst, queries, method="exact")
 
-    ours_per_query = _median_call(batch) / len(queries)
+    ours_per_query = median_seconds(batch) / len(queries)
     ratio = pg_per_query / ours_per_query
     ok = err <= TOL
     return {"engine": "bayesnet",

@@ -21,10 +21,9 @@ Not collected by pytest; asserts nothing. Run alone: ``python -m tests.perf.benc
 
 from __future__ import annotations
 
-import statistics
-import time
-
 import numpy as np
+
+from tests.perf.timing import median_seconds
 
 N_VARIABLES = 200
 N_QUERIES = 1000
@@ -33,13 +32,7 @@ IN_DEGREE = 3
 
 
 def _median(fn, repeats: int = 5) -> float:
-    fn()
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter_ns()
-        fn()
-        times.append((time.perf_counter_ns() - t0) * 1e-9)
-    return statistics.median(times)
+    return median_seconds(fn, repeats, warmup=True)
 
 
 def _same_shape_queries(fam, inst, n: int, seed: int):
