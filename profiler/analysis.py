@@ -7,8 +7,14 @@ This is the one place where points become fitter input. The rules are:
   likelihood); ``error`` points are left out and flagged;
 * a single ``wrong`` point voids the curve's measured verdicts: a fast wrong answer is not a
   result, so ``work`` and ``time`` are None and a flag says why;
-* by time, each point's per-repeat seconds are passed as its repeats so the fitter can weigh
-  noisy points; by work, the mean work per query is used (work is deterministic);
+* by time, each point's fastest per-query seconds (:attr:`~profiler.records.Point.
+  seconds_fastest`, over its contiguous repeats and the curve's interleaved sweep) is fitted:
+  interference on a shared machine only adds time, in spells longer than a point, and the
+  fastest of repeats spread over the whole curve is the steadiest cost of the work itself.
+  No repeats are passed (a bootstrap of a minimum is not consistent), so intervals come from
+  the profile likelihood. :attr:`CurveAnalysis.typical_factor` (median over points of
+  median / fastest) says how much slower a typical repeat was, for planners;
+  by work, the mean work per query is used (work is deterministic);
 * the *predicted* verdict is the same fit on the family's ``predicted_work`` at the measured
   sizes (censored points included: a formula needs no run), and the theory-vs-measurement
   agreement comes from :func:`profiler.audit.compare_with_theory`.
@@ -59,6 +65,10 @@ class CurveAnalysis:
         ``"agrees" | "disagrees" | "undecided" | "no theory"`` and a sentence for the report.
     flags
         Plain phrases about the points: censored counts, wrong answers, errors, budget cuts.
+    typical_factor
+        Median over the ``ok`` points of ``seconds_median / seconds_fastest`` (>= 1): how much
+        slower a typical repeat ran than the fastest one the time verdict is fitted on. None
+        without timed points.
     """
 
     curve: CurveResult
@@ -69,6 +79,7 @@ class CurveAnalysis:
     agreement: str
     agreement_note: str
     flags: tuple[str, ...]
+    typical_factor: float | None = None
 
     @property
     def key(self) -> str:
@@ -134,17 +145,24 @@ def _work_series(points: Iterable[Point]):
 
 
 def _time_series(points: Iterable[Point]):
-    sizes, costs, cens, reps = [], [], [], []
+    sizes, costs, cens = [], [], []
     for p in points:
-        if p.status == "ok" and _finite_positive(p.seconds_median):
-            sizes.append(p.size); costs.append(float(p.seconds_median)); cens.append(False)
-            reps.append(tuple(r for r in p.repeat_seconds if _finite_positive(r)))
-        elif p.is_censored and _finite_positive(p.seconds_median):
-            # seconds_median of a censored point holds the cap per query: a lower bound.
-            sizes.append(p.size); costs.append(float(p.seconds_median)); cens.append(True)
-            reps.append(())
-    has_repeats = any(len(r) >= 2 for r in reps)
-    return sizes, costs, cens, (reps if has_repeats else None)
+        fastest = p.seconds_fastest
+        if not _finite_positive(fastest):
+            continue
+        # For a censored point seconds_fastest is the cap per query: a lower bound.
+        sizes.append(p.size); costs.append(float(fastest)); cens.append(p.is_censored)
+    return sizes, costs, cens
+
+
+def _typical_factor(points: Iterable[Point]) -> float | None:
+    ratios = sorted(float(p.seconds_median) / float(p.seconds_fastest) for p in points
+                    if p.status == "ok" and _finite_positive(p.seconds_median)
+                    and _finite_positive(p.seconds_fastest))
+    if not ratios:
+        return None
+    mid = len(ratios) // 2
+    return ratios[mid] if len(ratios) % 2 else 0.5 * (ratios[mid - 1] + ratios[mid])
 
 
 def _predicted_series(points: Iterable[Point]):
@@ -218,8 +236,8 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
                          "left out of the work fit")
         if why:
             flags.append(f"work: {why}")
-        sizes, costs, cens, reps = _time_series(points)
-        time, why = fit_series(sizes, costs, cens, repeats=reps, seed=seed)
+        sizes, costs, cens = _time_series(points)
+        time, why = fit_series(sizes, costs, cens, seed=seed)
         if why:
             flags.append(f"time: {why}")
     sizes, costs, cens = _predicted_series(points)
@@ -229,7 +247,7 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
     agreement, note = compare_with_theory(measured, predicted, curve.theory)
     return CurveAnalysis(curve=curve, work=work, time=time, predicted=predicted,
                          theory=curve.theory, agreement=agreement, agreement_note=note,
-                         flags=tuple(flags))
+                         flags=tuple(flags), typical_factor=_typical_factor(points))
 
 
 #: The last few studies analysed. Records are frozen and the fits seeded, so a study with the
@@ -244,7 +262,7 @@ def _study_key(result: StudyResult, seed: int) -> tuple:
     return (result.study_id, seed, tuple(
         (c.index, c.spec, c.theory, c.cut_by_budget, tuple(
             (p.size, p.status, p.seconds_median, p.work, p.predicted_work, p.finished_at,
-             p.repeat_seconds) for p in c.points)) for c in result.curves))
+             p.repeat_seconds, p.interleaved_seconds) for p in c.points)) for c in result.curves))
 
 
 def analyse_study(result: StudyResult, *, seed: int = 0) -> list[CurveAnalysis]:

@@ -266,7 +266,8 @@ def _curve_task(job: dict[str, Any]) -> dict[str, Any]:
         outcome = run_curve(ctx, index, spec, done,
                             on_point=lambda p: put("point", point=rename(p).to_dict()),
                             on_event=lambda e: put("event", event={**e, "dask_worker": address}),
-                            history=history, budget=budget, stop=stop)
+                            history=history, budget=budget, stop=stop,
+                            on_revised=lambda p: put("revised", point=p.to_dict()))
     finally:
         finished.set()
     reason, cut = outcome.reason, outcome.cut_by_budget
@@ -336,6 +337,7 @@ def run_curves_dask(address: str | None, ctx: Any, spec: StudySpec,
                     on_outcome: Callable[[Any], None],
                     on_worker: Callable[[str, dict], None] | None = None,
                     on_event: Callable[[dict], None] | None = None,
+                    on_revised: Callable[[Point], None] | None = None,
                     client: Any = None, max_retries: int = DEFAULT_MAX_RETRIES,
                     curves: Sequence[int] | None = None, poll_s: float = 0.1,
                     on_poll: Callable[[Any], None] | None = None) -> DaskRunSummary:
@@ -361,6 +363,9 @@ def run_curves_dask(address: str | None, ctx: Any, spec: StudySpec,
         after ``max_retries`` worker losses gets an outcome with reason ``"worker lost"``.
     on_worker
         Called with ``(worker id, environment)`` for every Dask worker that ran a task.
+    on_revised
+        Called with each point the curve's interleaved sweep re-issued (the caller replaces
+        the stored one); only points already handed to ``on_point`` are passed.
     on_event
         Progress events (the runner's kinds: ``curve_start``, ``point_start``, ``point``,
         ``curve_done``), in this thread.
@@ -390,7 +395,8 @@ def run_curves_dask(address: str | None, ctx: Any, spec: StudySpec,
         with open_client(str(address)) as own:
             return run_curves_dask(address, ctx, spec, stored, on_point=on_point,
                                    on_outcome=on_outcome, on_worker=on_worker,
-                                   on_event=on_event, client=own, max_retries=max_retries,
+                                   on_event=on_event, on_revised=on_revised, client=own,
+                                   max_retries=max_retries,
                                    curves=curves, poll_s=poll_s, on_poll=on_poll)
     from distributed import Event, Queue, Variable
 
@@ -442,10 +448,21 @@ def run_curves_dask(address: str | None, ctx: Any, spec: StudySpec,
         counts["new"] += 1
         done_vars[i].set(sorted(held[i]))
 
+    def revise(point: Point) -> None:
+        i, size = int(point.curve), int(point.size)
+        if on_revised is None or i not in held or size not in held[i]:
+            return  # only a stored point can be revised
+        # Keep the stored point's cluster-wide worker id (a retried task's history carries it).
+        point = replace(point, worker=held[i][size].worker)
+        on_revised(point)
+        held[i][size] = point
+
     def handle(msg: dict) -> None:
         kind = msg.get("kind")
         if kind == "point":
             take(Point.from_dict(msg["point"]))
+        elif kind == "revised":
+            revise(Point.from_dict(msg["point"]))
         elif kind == "event":
             emit(dict(msg["event"]))
         elif kind == "worker":
@@ -548,7 +565,8 @@ def store_curves_dask(address: str | None, ctx: Any, spec: StudySpec,
     return run_curves_dask(address, ctx, spec, stored, on_point=store.add_point,
                            on_outcome=lambda o: _store_outcome(store, study_id, spec, o),
                            on_worker=lambda w, env: store.add_worker(study_id, w, env),
-                           on_event=emit, client=client, **options)
+                           on_event=emit, on_revised=store.add_sweep, client=client,
+                           **options)
 
 
 # ============================================================================ times across machines

@@ -106,7 +106,7 @@ FLAT_DEGREE = 0.2
 #: Extra tolerance (ln units, about 10%) of the hold-out check beyond its prediction band.
 HOLDOUT_ALLOWANCE = math.log(1.1)
 #: One-sided level of the runs test for structure in residuals.
-RUNS_ALPHA = 0.05
+RUNS_ALPHA = 0.01
 #: Residual structure smaller than this (rms, ln units: about 5%) is not allowed to veto a
 #: verdict: deterministic work counts carry lower-order terms (4n - 2 on a chain) that a runs
 #: test detects but that cannot turn one growth class into the other; a cache step or a regime
@@ -563,78 +563,82 @@ def _solve(law: Law, data: _Data, theta0: np.ndarray, ys: np.ndarray | None = No
     floor2 = NOISE_FLOOR ** 2
     n_obs = max(data.n_obs, 1)
 
-    def sse(mu):
-        r = ys - mu
+    def sse(mu, yy):
+        r = yy - mu
         return np.sum(np.where(obs, r * r, 0.0), axis=1)
 
     mu, _ = law.mu(theta, data.feats)
     if censored:
-        sigma2 = np.maximum(sse(mu) / n_obs, floor2)
+        sigma2 = np.maximum(sse(mu, ys) / n_obs, floor2)
         obj, _ = _objective(law, theta, data, ys, sigma2)
     else:
-        obj = sse(mu)
+        obj = sse(mu, ys)
         sigma2 = None
     lam = np.full(B, 1e-3)
     active = np.ones(B, bool)
     eye = np.eye(P)
     for _ in range(max_iter):
-        mu, J = law.mu(theta, data.feats, jac=True)
+        # Only the rows still moving are computed: most converge in a few steps, and a
+        # replicate that needs 80 should not make the other 199 pay for 80.
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            break
+        th, yy, lm, ob = theta[idx], ys[idx], lam[idx], obj[idx]
+        s2 = sigma2[idx] if censored else None
+        mu, J = law.mu(th, data.feats, jac=True)
         J = J * free
-        r = ys - mu
+        r = yy - mu
+        Jt = np.swapaxes(J, 1, 2)
         if censored:
-            s = np.sqrt(sigma2)[:, None]
-            z = (mu - ys) / s                                   # for censored columns
+            s = np.sqrt(s2)[:, None]
+            z = (mu - yy) / s                                   # for censored columns
             mills = _mills(z)
-            grad_pt = np.where(obs, r / sigma2[:, None], mills / s)
-            w = np.where(obs, 1.0 / sigma2[:, None], mills * (z + mills) / sigma2[:, None])
+            grad_pt = np.where(obs, r / s2[:, None], mills / s)
+            w = np.where(obs, 1.0 / s2[:, None], mills * (z + mills) / s2[:, None])
             w = np.maximum(w, 1e-12)
-            Jt = np.swapaxes(J, 1, 2)
             A = Jt @ (J * w[..., None])
             g = (Jt @ grad_pt[..., None])[..., 0]
         else:
-            Jt = np.swapaxes(J, 1, 2)
             A = Jt @ J
             g = (Jt @ r[..., None])[..., 0]
         D = np.diagonal(A, axis1=1, axis2=2).copy()
         D = np.maximum(D, 1e-12 * (1.0 + D.max(axis=1, keepdims=True)))
         D[:, ~free] = 1.0
-        M = A + (lam[:, None] * D)[:, :, None] * eye
+        M = A + (lm[:, None] * D)[:, :, None] * eye
         try:
             delta = np.linalg.solve(M, g[..., None])[..., 0]
         except np.linalg.LinAlgError:
             delta = np.einsum("bpq,bq->bp", np.linalg.pinv(M), g)
         delta[:, ~free] = 0.0
-        delta[~active] = 0.0
-        new = np.clip(theta + delta, lo, hi)
+        new = np.clip(th + delta, lo, hi)
         if censored:
-            new_obj, _ = _objective(law, new, data, ys, sigma2)
+            new_obj, _ = _objective(law, new, data, yy, s2)
         else:
-            new_obj = sse(law.mu(new, data.feats)[0])
-        good = np.isfinite(new_obj) & (new_obj <= obj)
-        gain = np.where(good, obj - new_obj, 0.0)
-        theta = np.where(good[:, None], new, theta)
-        obj = np.where(good, new_obj, obj)
-        lam = np.where(good, np.maximum(lam * 0.3, 1e-9), lam * 8.0)
+            new_obj = sse(law.mu(new, data.feats)[0], yy)
+        good = np.isfinite(new_obj) & (new_obj <= ob)
+        gain = np.where(good, ob - new_obj, 0.0)
+        th = np.where(good[:, None], new, th)
+        ob = np.where(good, new_obj, ob)
+        lm = np.where(good, np.maximum(lm * 0.3, 1e-9), lm * 8.0)
         if censored:
             # EM step for the noise variance: E[(Y - mu)^2 | Y > cap] = s^2 (1 + a * mills(a)).
-            mu_c, _ = law.mu(theta, data.feats)
-            rr = ys - mu_c
-            s = np.sqrt(sigma2)[:, None]
+            mu_c, _ = law.mu(th, data.feats)
+            rr = yy - mu_c
+            s = np.sqrt(s2)[:, None]
             a = rr / s                                          # (cap - mu) / s
             tail = _mills(-a)
-            extra = np.sum(np.where(data.cens, sigma2[:, None] * (1.0 + a * tail), 0.0), axis=1)
+            extra = np.sum(np.where(data.cens, s2[:, None] * (1.0 + a * tail), 0.0), axis=1)
             new_s2 = np.maximum((np.sum(np.where(obs, rr * rr, 0.0), axis=1) + extra) / data.n,
                                 floor2)
-            new_s2 = np.where(active, new_s2, sigma2)
-            obj2, _ = _objective(law, theta, data, ys, new_s2)
-            take = obj2 <= obj
-            sigma2 = np.where(take, new_s2, sigma2)
-            gain = gain + np.where(take, obj - obj2, 0.0)
-            obj = np.where(take, obj2, obj)
-        done = (good & (gain <= 1e-9 * (1e-2 + np.abs(obj)))) | (lam > 1e10)
-        active &= ~done
-        if not active.any():
-            break
+            obj2, _ = _objective(law, th, data, yy, new_s2)
+            take = obj2 <= ob
+            s2 = np.where(take, new_s2, s2)
+            gain = gain + np.where(take, ob - obj2, 0.0)
+            ob = np.where(take, obj2, ob)
+            sigma2[idx] = s2
+        theta[idx], obj[idx], lam[idx] = th, ob, lm
+        done = (good & (gain <= 1e-9 * (1e-2 + np.abs(ob)))) | (lm > 1e10)
+        active[idx[done]] = False
     if censored:
         ll = -obj
         sigma = np.sqrt(sigma2)

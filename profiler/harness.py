@@ -64,7 +64,7 @@ import sys
 import tempfile
 import threading
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Callable, Iterable, Sequence
 
 from profiler.records import CurveSpec, Point
@@ -339,7 +339,10 @@ class StudyContext:
     ``reference_s`` bounds the untimed reference checks of one point (default: the point cap);
     ``grace_s`` is the wait between SIGTERM and SIGKILL; ``sys_path`` entries are prepended in
     the worker so a user's ``package.module:Class`` imports there as it does here.
-    ``launcher`` is ``"auto"`` (fork workers from a preloaded zygote where the platform allows,
+    ``interleave_rounds`` is how many rounds of the interleaved sweep follow a curve (0: none);
+    points whose repeat lasts longer than ``interleave_repeat_s`` stay out of it, and the sweep
+    may take at most ``interleave_share`` of the time the curve took (and never more than the
+    budget left). ``launcher`` is ``"auto"`` (fork workers from a preloaded zygote where the platform allows,
     :mod:`profiler.zygote`, else spawn an interpreter) or ``"spawn"`` (always a fresh
     interpreter); the environment variable ``INFERCOST_LAUNCHER=spawn`` forces the latter too.
     """
@@ -351,11 +354,14 @@ class StudyContext:
     threads: int = 1
     min_repeat_seconds: float = 0.01
     min_repeats: int = 5
-    max_repeats: int = 20
+    max_repeats: int = 12
     spread_limit: float = 0.1
     reference_s: float | None = None
     grace_s: float = 0.3
     measure_memory: bool = True
+    interleave_rounds: int = 7
+    interleave_repeat_s: float = 0.25
+    interleave_share: float = 0.35
     python: str = field(default_factory=lambda: sys.executable)
     sys_path: tuple[str, ...] = field(default_factory=lambda: tuple(p for p in sys.path if p))
     launcher: str = "auto"
@@ -571,6 +577,62 @@ class _WorkerState:
         return out
 
 
+    def interleave(self, plan: Sequence[tuple[int, int]], rounds: int, deadline_s: float,
+                   seed: int) -> dict[str, Any]:
+        """Repeats of measured points, taken round-robin in a fresh random order per round.
+
+        ``plan`` holds (size, loops) of points already measured; each is rebuilt (same seeds,
+        so the same instance and queries), warmed up once, then timed once per round with its
+        own loop count. Rounds that would pass ``deadline_s`` are not started; a size whose
+        rebuild fails is left out. Returns ``{"seconds": {size: [per-query seconds, ...]},
+        "rounds": rounds done}``.
+
+        Notes
+        -----
+        Cost: one build and one warm-up pass per size, then ``rounds`` repeats of each (the
+        parent sizes ``rounds`` from the points' measured repeat lengths). All instances are
+        alive at once; the parent leaves out points whose measured peak would crowd the cap.
+        Randomising the order each round decorrelates slow spells of the machine from size
+        (common practice in benchmarking: randomised, interleaved trials).
+        """
+        from model_zoo.base import make_rng, size_along
+
+        t_end = time.perf_counter() + deadline_s
+        spec, family = self.spec, self.family
+        timed: list[tuple[int, Callable[[], Any], int, int]] = []
+        for size, loops in plan:
+            if time.perf_counter() >= t_end:
+                break
+            try:
+                instance = family.build(size_along(spec.axis, int(size), spec.fixed),
+                                        topology=spec.topology, seed=int(self.ctx["seed"]))
+                queries = list(family.queries(instance, self.level, n=int(spec.queries),
+                                              seed=query_seed(self.ctx["seed"], int(size))))
+                if not queries:
+                    continue
+                fn = _answerer(family, instance, queries, spec.method, False)
+                fn()  # warm-up: caches and plans, as before the point's own repeats
+            except Exception:
+                continue
+            timed.append((int(size), fn, max(1, int(loops)), len(queries)))
+        out: dict[int, list[float]] = {size: [] for size, *_ in timed}
+        rng = make_rng(seed, 0x1E4)
+        longest = {size: 0.0 for size in out}
+        done = 0
+        gc.collect()
+        for _ in range(max(0, int(rounds))):
+            need = sum(longest.values())
+            if time.perf_counter() + need > t_end:
+                break
+            for i in rng.permutation(len(timed)):
+                size, fn, loops, n = timed[int(i)]
+                t = _timed(fn, loops)
+                longest[size] = max(longest[size], t)
+                out[size].append(t / (loops * n))
+            done += 1
+        return {"seconds": {str(k): v for k, v in out.items() if v}, "rounds": done}
+
+
 def _predicted_bytes(family: Any, instance: Any, queries: Sequence[Any], method: str) -> Iterable:
     fn = getattr(family, "predicted_bytes", None)
     if not callable(fn):
@@ -607,7 +669,8 @@ def worker_main() -> None:
 
     The worker's own stdout is pointed at /dev/null first so that a family that prints cannot
     corrupt the channel. Commands: ``init`` (family, curve, limits), ``realize`` (size),
-    ``point`` (size, deadline), ``quit``. The worker exits when stdin closes (parent gone).
+    ``point`` (size, deadline), ``interleave`` (measured sizes with their loop counts, rounds,
+    deadline), ``quit``. The worker exits when stdin closes (parent gone).
     """
     chan = os.fdopen(os.dup(1), "w", buffering=1)
     devnull = os.open(os.devnull, os.O_WRONLY)
@@ -666,6 +729,15 @@ def worker_main() -> None:
                                      float(msg["reference_s"]))
                 send({"phase": "done", "fields": fields,
                       "worker_seconds": time.perf_counter() - t0})
+            elif op == "interleave":
+                if state is None:
+                    raise RuntimeError("worker not initialised")
+                _limit_cpu(float(msg["deadline_s"]) + 5.0)
+                _limit_address_space(int(state.ctx["memory_mb"]))
+                plan = [(int(s), int(n)) for s, n in msg["plan"]]
+                send({"phase": "interleaved",
+                      **state.interleave(plan, int(msg["rounds"]), float(msg["deadline_s"]),
+                                         int(msg.get("seed", 0)))})
             elif op == "quit":
                 break
             else:
@@ -921,7 +993,9 @@ class CurveOutcome:
     ``"stopped"``, ...); ``cut_by_budget`` is True when the budget stopped a curve whose schedule
     still had a size to measure. ``workers`` maps worker ids to their environments;
     ``point_seconds`` maps each measured size to (wall seconds seen by the parent, seconds
-    inside the worker) — their difference is the isolation overhead.
+    inside the worker) — their difference is the isolation overhead. ``revised`` holds stored
+    or new points re-issued with their ``interleaved_seconds`` after the interleaved sweep
+    (also handed to ``on_revised``).
     """
 
     index: int
@@ -935,6 +1009,7 @@ class CurveOutcome:
     workers: dict[str, dict[str, Any]] = field(default_factory=dict)
     point_seconds: dict[int, tuple[float, float | None]] = field(default_factory=dict)
     seconds: float = 0.0
+    revised: tuple[Point, ...] = ()
 
 
 def _make_point(ctx: StudyContext, index: int, spec: CurveSpec, size: int, status: str,
@@ -1100,6 +1175,53 @@ class _CurveDriver:
     def _point(self, size: int, status: str, worker: str, fields: dict[str, Any]) -> Point:
         return _make_point(self.ctx, self.index, self.spec, size, status, worker, fields)
 
+    def interleave(self, points: Sequence[Point], allowed_s: float) -> list[Point]:
+        """The interleaved sweep over a finished curve's ``ok`` points (see :func:`run_curve`).
+
+        Returns the points that got at least two interleaved repeats, with
+        ``interleaved_seconds`` set; nothing when fewer than three sizes qualify, when fewer
+        than three rounds fit in ``allowed_s``, or when the worker fails (the contiguous
+        measurements stand).
+        """
+        ctx = self.ctx
+        rounds = int(ctx.interleave_rounds)
+        cap_bytes = int(ctx.memory_mb) * MIB
+        chosen: list[tuple[Point, float]] = []
+        held = 0
+        for p in sorted(points, key=lambda q: q.size):
+            if p.status != "ok" or not p.loops or not p.n_queries or not p.seconds_median:
+                continue
+            repeat_s = float(p.seconds_median) * p.loops * p.n_queries
+            peak = int(p.peak_bytes or 0)
+            if repeat_s > ctx.interleave_repeat_s or held + peak > cap_bytes // 2:
+                continue
+            held += peak
+            chosen.append((p, repeat_s))
+        round_s = sum(r for _, r in chosen)
+        if len(chosen) < 3 or rounds < 3 or round_s <= 0:
+            return []
+        rounds = min(rounds, int(allowed_s / round_s))
+        if rounds < 3:
+            return []
+        setup_s = sum(float(p.build_seconds or 0.0) + r / max(p.loops, 1) for p, r in chosen)
+        deadline_s = rounds * round_s * 1.5 + setup_s * 1.5 + 0.5
+        try:
+            w = self._ensure()
+            w.send({"op": "interleave", "rounds": rounds, "deadline_s": deadline_s,
+                    "seed": int(ctx.seed) + 7919 * self.index,
+                    "plan": [(int(p.size), int(p.loops)) for p, _ in chosen]})
+            msg = w.read(timeout=deadline_s + 10.0)
+        except (_InitFailed, _WorkerDied, _Silent):
+            if self.worker is not None:
+                self.worker.kill()
+                self.worker = None
+            return []
+        if msg.get("phase") != "interleaved":
+            return []
+        got = {int(k): tuple(float(x) for x in v) for k, v in (msg.get("seconds") or {}).items()}
+        return [replace(p, interleaved_seconds=got[p.size]) for p, _ in chosen
+                if len(got.get(p.size, ())) >= 2]
+
     def close(self) -> None:
         if self.worker is not None:
             self.worker.close()
@@ -1144,8 +1266,17 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
               sizes_done: Iterable[int] = (), on_point: Callable[[Point], None] | None = None,
               on_event: Callable[[dict], None] | None = None, *,
               history: Sequence[Point] = (), budget: Callable[[], float] | None = None,
-              stop: threading.Event | None = None, schedule: Any = None) -> CurveOutcome:
+              stop: threading.Event | None = None, schedule: Any = None,
+              on_revised: Callable[[Point], None] | None = None) -> CurveOutcome:
     """Run one curve in its own isolated worker process, streaming each point as it finishes.
+
+    When the curve has stopped growing, an *interleaved sweep* re-times its ``ok`` points (new
+    and stored): ``StudyContext.interleave_rounds`` rounds, each visiting every size once in a
+    fresh random order, each visit one repeat of the point's calibrated loop count. Contiguous
+    repeats all fall in whatever spell the machine is in while the point runs; spread over the
+    whole sweep, a slow spell lands on random sizes instead of bending the curve. Points whose
+    repeat is long (their own repeats already span a long window), or too big to hold together,
+    stay out; the sweep fits in ``interleave_share`` of the curve's time and the budget left.
 
     Parameters
     ----------
@@ -1170,6 +1301,9 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
         When set, the curve ends after the point in flight.
     schedule
         Override the schedule (default :func:`profiler.schedule.make_schedule` of ``spec``).
+    on_revised
+        Called with each point re-issued by the interleaved sweep (same size, same
+        measurements, ``interleaved_seconds`` filled in): the caller replaces the stored one.
 
     Returns
     -------
@@ -1189,6 +1323,7 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
                                       if (w := point_seconds_estimate(p)) is not None]
     reference_times: list[float] = []
     new_points: list[Point] = []
+    revised: list[Point] = []
     point_seconds: dict[int, tuple[float, float | None]] = {}
     reason, cut = "", False
     key = spec.key()
@@ -1244,6 +1379,9 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
                 need = predicted_point_seconds(walls, size, cap_seconds=cap)
                 if len(reference_times) >= 2:
                     need += min(reference_times[1:])
+                # Room for the interleaved sweep over the points so far and this one (its
+                # repeat is about a tenth of its point's time), so growth never crowds it out.
+                need += _sweep_reserve(study_ctx, history, need)
                 if need > budget():
                     reason, cut = "budget", True
                     break
@@ -1265,6 +1403,16 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
             emit({"event": "point", "size": point.size, "status": point.status,
                   "seconds": point.seconds_median, "point_seconds": wall, "work": point.work,
                   "message": point.message})
+        if reason not in ("stopped", "error") and study_ctx.interleave_rounds > 0:
+            allowed = max(1.5, study_ctx.interleave_share * (time.monotonic() - t_start))
+            if budget is not None:
+                allowed = min(allowed, budget())
+            revised = driver.interleave(history, allowed)
+            if stop is not None and stop.is_set():
+                revised = []
+            for point in revised:
+                if on_revised is not None:
+                    on_revised(point)
     finally:
         driver.close()
     facts = driver.facts
@@ -1273,7 +1421,22 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
                         work_unit=facts.get("work_unit") or "",
                         mechanism_knob=facts.get("mechanism_knob") or "",
                         workers=dict(driver.workers), point_seconds=point_seconds,
-                        seconds=time.monotonic() - t_start)
+                        seconds=time.monotonic() - t_start, revised=tuple(revised))
+
+
+def _sweep_reserve(ctx: StudyContext, points: Sequence[Any], next_point_s: float) -> float:
+    """Seconds to keep for the interleaved sweep if one more point of ``next_point_s`` runs."""
+    if ctx.interleave_rounds <= 0:
+        return 0.0
+    round_s = 0.0
+    for p in points:
+        if getattr(p, "status", "") == "ok" and getattr(p, "seconds_median", None):
+            repeat_s = float(p.seconds_median) * max(int(p.loops or 1), 1) * \
+                max(int(p.n_queries or 1), 1)
+            if repeat_s <= ctx.interleave_repeat_s:
+                round_s += repeat_s
+    round_s += min(0.1 * next_point_s, ctx.interleave_repeat_s)
+    return ctx.interleave_rounds * round_s * 1.2
 
 
 @dataclass(frozen=True)

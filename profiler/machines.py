@@ -61,9 +61,9 @@ def normalise_times(points: Sequence[Point], workers: Mapping[str, Mapping[str, 
                     reference_seconds: float | None = None) -> list[Point]:
     """Put the times of points measured on different machines on one machine's scale.
 
-    Each point's ``seconds_median/min/max`` and ``repeat_seconds`` are multiplied by
-    ``reference_seconds / c``, where ``c`` is the calibration figure of the machine that measured
-    it (:func:`profiler.environment.calibration_figure`: a fixed matrix-product kernel). Points
+    Each point's ``seconds_median/min/max``, ``repeat_seconds`` and ``interleaved_seconds`` are
+    multiplied by ``reference_seconds / c``, where ``c`` is the calibration figure of the machine
+    that measured it (:func:`profiler.environment.calibration_figure`: a fixed matrix-product kernel). Points
     from one machine only are returned unchanged (no normalisation needed, none applied). Work,
     status and every other field are left alone: work counts are machine-independent.
 
@@ -110,7 +110,7 @@ def normalise_times(points: Sequence[Point], workers: Mapping[str, Mapping[str, 
         if c is None or reference_seconds is None:
             note = "time not comparable across machines: its worker has no calibration figure"
             out.append(replace(p, seconds_median=None, seconds_min=None, seconds_max=None,
-                               repeat_seconds=(),
+                               repeat_seconds=(), interleaved_seconds=(),
                                message="; ".join(m for m in (p.message, note) if m)))
             continue
         k = float(reference_seconds) / c
@@ -120,5 +120,7 @@ def normalise_times(points: Sequence[Point], workers: Mapping[str, Mapping[str, 
 
         out.append(replace(p, seconds_median=scaled(p.seconds_median),
                            seconds_min=scaled(p.seconds_min), seconds_max=scaled(p.seconds_max),
-                           repeat_seconds=tuple(float(r) * k for r in p.repeat_seconds)))
+                           repeat_seconds=tuple(float(r) * k for r in p.repeat_seconds),
+                           interleaved_seconds=tuple(float(r) * k
+                                                     for r in p.interleaved_seconds)))
     return out

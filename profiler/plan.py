@@ -425,6 +425,13 @@ def _estimate(curves: _Curves, family: str, w: Workload) -> Estimate:
                         base.upper * hi.upper / lo.median)
 
     seconds, work, peak = at("time"), at("work"), at("memory")
+    factor = primary.typical_factor
+    if seconds is not None and factor is not None and factor > 1.0:
+        # The time law is fitted on the fastest repeats; a planner pays for typical ones.
+        seconds = Interval(seconds.median * factor, seconds.lower, seconds.upper * factor)
+        notes.append(f"{key}: time is fitted on the fastest repeats; the central value and upper "
+                     f"bound are scaled by {factor:.2f}, the median/fastest ratio of its repeats "
+                     "on the machine that measured it (the lower bound stays at the fastest)")
     for a, axis, target in ((primary, p_axis, p_target),
                             (other if ratio_needed else None, o_axis, o_target)):
         if a is None or target is None:

@@ -116,6 +116,12 @@ class Point:
     ``peak_bytes`` the larger of tracemalloc's peak and the process's RSS growth during the point.
     For censored points (``timeout``, ``memory``) ``seconds_median`` holds the cap per query:
     a lower bound, never the cost.
+
+    ``repeat_seconds`` are the point's contiguous repeats (per query); ``interleaved_seconds``
+    are repeats taken after the curve finished, one per round of a sweep that visits the
+    curve's sizes in a fresh random order each round (:func:`profiler.harness.run_curve`), so
+    that a slow spell of a shared machine falls on random sizes rather than on one point.
+    :attr:`seconds_fastest` is what the time verdict is fitted on.
     """
 
     study: str
@@ -145,20 +151,40 @@ class Point:
     finished_at: float = 0.0
     profile: dict[str, float] = field(default_factory=dict)
     repeat_seconds: tuple[float, ...] = ()
+    interleaved_seconds: tuple[float, ...] = ()
 
     @property
     def is_censored(self) -> bool:
         return self.status in CENSORED
 
+    @property
+    def seconds_fastest(self) -> float | None:
+        """Fastest per-query seconds seen: over contiguous and interleaved repeats.
+
+        Interference on a shared machine (another process, the hypervisor, frequency changes)
+        only ever adds time to a repeat of fixed work, and it comes in spells that outlast a
+        point, so the fastest of repeats spread over the whole curve is the steadiest estimate
+        of what the work itself costs (Chen & Revels 2016). For a censored point it is the
+        lower bound in ``seconds_median``; None when nothing was timed.
+        """
+        if self.status != "ok":
+            return self.seconds_median if self.is_censored else None
+        seen = [float(s) for s in (*self.repeat_seconds, *self.interleaved_seconds,
+                                   self.seconds_min, self.seconds_median)
+                if s is not None and s == s and s > 0]
+        return min(seen) if seen else None
+
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)
         d["repeat_seconds"] = list(self.repeat_seconds)
+        d["interleaved_seconds"] = list(self.interleaved_seconds)
         return d
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "Point":
         d = dict(d)
         d["repeat_seconds"] = tuple(d.get("repeat_seconds") or ())
+        d["interleaved_seconds"] = tuple(d.get("interleaved_seconds") or ())
         d["profile"] = dict(d.get("profile") or {})
         return cls(**{f.name: d[f.name] for f in fields(cls) if f.name in d})
 

@@ -216,7 +216,8 @@ def _point_rows(result: StudyResult) -> tuple[list[str], list[dict[str, Any]]]:
 
     The values come from :func:`profiler.store.points_csv_rows` (``study`` is the study's name,
     ``profile_<name>`` one column per structural-profile entry), so points.csv and
-    :func:`profiler.store.load_points` agree; ``repeat_seconds`` is added, ``;``-separated.
+    :func:`profiler.store.load_points` agree; ``repeat_seconds`` and ``interleaved_seconds``
+    are added, ``;``-separated.
     """
     from profiler.store import points_csv_rows
 
@@ -227,10 +228,11 @@ def _point_rows(result: StudyResult) -> tuple[list[str], list[dict[str, Any]]]:
             if k not in seen:
                 seen.append(k)
     columns = list(POINT_COLUMNS) + [k for k in seen if k not in POINT_COLUMNS]
-    columns.append("repeat_seconds")
+    columns += ["repeat_seconds", "interleaved_seconds"]
     points = [p for c in result.curves for p in c.points]   # the export's own order
     for row, p in zip(rows, points):
         row["repeat_seconds"] = ";".join(f"{r:.9g}" for r in p.repeat_seconds)
+        row["interleaved_seconds"] = ";".join(f"{r:.9g}" for r in p.interleaved_seconds)
     return columns, rows
 
 
@@ -282,7 +284,8 @@ def _series(curve: CurveResult, kind: str):
             v = p.work
             lo = hi = v
         else:
-            v, lo, hi = p.seconds_median, p.seconds_min, p.seconds_max
+            # The fitted statistic, with a bar up to the typical (median) repeat.
+            v, lo, hi = p.seconds_fastest, p.seconds_fastest, p.seconds_median
         if v is None or not math.isfinite(v) or v <= 0:
             continue
         lo = v if lo is None or not math.isfinite(lo) or lo <= 0 else lo
@@ -350,7 +353,7 @@ def _draw_cost_panel(ax, rax, curve: CurveResult, verdict, kind: str) -> None:
         hi = np.array([o[3] for o in ok], float)
         ax.errorbar(xs, ys, yerr=[np.maximum(ys - lo, 0), np.maximum(hi - ys, 0)], fmt="o",
                     color=ink, ms=5, capsize=3, lw=1, zorder=5,
-                    label="measured (median, min–max)" if kind == "time" else "measured")
+                    label="measured (fastest, bar to median)" if kind == "time" else "measured")
     if cens:
         cx = [c[0] for c in cens]
         cy = [c[1] for c in cens]

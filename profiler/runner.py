@@ -86,7 +86,7 @@ def study_context(spec: StudySpec, study_id: str, *, quick: bool = False):
     """The :class:`~profiler.harness.StudyContext` of a study (lighter repeats when ``quick``)."""
     from profiler.harness import StudyContext
 
-    extra = {"min_repeats": 3, "max_repeats": 7} if quick else {}
+    extra = ({"min_repeats": 3, "max_repeats": 7, "interleave_rounds": 5} if quick else {})
     return StudyContext.from_spec(spec, study_id, **extra)
 
 
@@ -191,7 +191,8 @@ def run_study(spec: StudySpec, *, store: str | Path = "reports/infercost.sqlite"
                                     else inbox.put(("point", p)),
                                     on_event=lambda e: inbox.put(("event", e)),
                                     history=history, budget=lambda: pool.seconds_left(i),
-                                    stop=stop)
+                                    stop=stop,
+                                    on_revised=lambda p: inbox.put(("revised", p)))
                 inbox.put(("outcome", outcome))
             except BaseException as exc:  # surface in the main thread, never lost in a thread
                 inbox.put(("crash", (i, exc)))
@@ -214,6 +215,8 @@ def run_study(spec: StudySpec, *, store: str | Path = "reports/infercost.sqlite"
                 if kind == "point":
                     st.add_point(item)
                     n_new += 1
+                elif kind == "revised":
+                    st.add_sweep(item)
                 elif kind == "event":
                     if item.get("event") == "curve_start":
                         progress.started(item["curve"])
@@ -259,9 +262,9 @@ def _drain(inbox: "queue.Queue", st: Any) -> None:
             kind, item = inbox.get_nowait()
         except queue.Empty:
             return
-        if kind == "point":
+        if kind in ("point", "revised"):
             try:
-                st.add_point(item)
+                (st.add_point if kind == "point" else st.add_sweep)(item)
             except Exception:
                 pass
 

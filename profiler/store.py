@@ -91,15 +91,30 @@ CREATE TABLE points (
 );
 """
 
+#: The interleaved sweep's repeats, kept apart so that point rows are never rewritten; added
+#: to a store written before it existed when that store is next opened.
+_SWEEPS_TABLE = """
+CREATE TABLE IF NOT EXISTS sweeps (
+    study_id TEXT NOT NULL REFERENCES studies(study_id),
+    curve INTEGER NOT NULL,
+    size INTEGER NOT NULL,
+    run INTEGER NOT NULL,
+    seconds_json TEXT NOT NULL,
+    finished_at REAL NOT NULL,
+    PRIMARY KEY (study_id, curve, size, run)
+)
+"""
+
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
 #: Columns of ``points.csv`` / :func:`load_points`, in order (profile columns follow,
-#: prefixed ``profile_``).
+#: prefixed ``profile_``). ``seconds_fastest`` is what the time verdict is fitted on
+#: (:attr:`profiler.records.Point.seconds_fastest`; the cap per query for censored points).
 POINT_COLUMNS = ("study", "study_id", "curve", "curve_key", "family", "level", "method", "axis",
                  "topology", "fixed", "size", "status", "seconds_median", "seconds_min",
                  "seconds_max", "seconds_spread", "repeats", "loops", "n_queries", "work",
                  "predicted_work", "peak_bytes", "build_seconds", "max_error", "worker",
-                 "finished_at", "message")
+                 "finished_at", "message", "seconds_fastest")
 
 
 def _dumps(obj: Any) -> str:
@@ -215,7 +230,7 @@ class Store:
         con.execute("BEGIN")
         try:
             con.execute(f"PRAGMA application_id={APPLICATION_ID}")
-            for statement in _SCHEMA.strip().split(";"):
+            for statement in (_SCHEMA + ";" + _SWEEPS_TABLE).strip().split(";"):
                 if statement.strip():
                     con.execute(statement)
             con.executemany("INSERT INTO meta(key, value) VALUES (?, ?)",
@@ -248,6 +263,11 @@ class Store:
         if version > SCHEMA_VERSION:
             raise StoreError(f"{self.path}: store schema {version} is newer than this infercost "
                              f"understands ({SCHEMA_VERSION}); upgrade infercost")
+        if "sweeps" not in tables:
+            try:
+                con.execute(_SWEEPS_TABLE)
+            except sqlite3.OperationalError:
+                pass  # a read-only store: it simply has no sweeps (see points())
 
     def close(self) -> None:
         with self._lock:
@@ -345,6 +365,31 @@ class Store:
             raise StoreError(f"{self.path}: point {point.study} curve {point.curve} size "
                              f"{point.size} is already stored (or its study is unknown)") from exc
 
+    def add_sweep(self, point: Point) -> bool:
+        """Store the interleaved sweep's repeats of a stored point (``interleaved_seconds``).
+
+        Point rows are never rewritten: the repeats go to their own table, one row per (point,
+        run), and :meth:`points` hands back each point with its latest run's repeats. Returns
+        False, storing nothing, when the point itself is not stored.
+        """
+        run = self._runs.get(point.study, 0)
+        seconds = _dumps([float(x) for x in point.interleaved_seconds])
+        with self._lock:
+            con = self._con
+            con.execute("BEGIN IMMEDIATE")
+            try:
+                known = con.execute("SELECT 1 FROM points WHERE study_id=? AND curve=? AND size=?",
+                                    (point.study, int(point.curve), int(point.size))).fetchone()
+                if known:
+                    con.execute("INSERT OR REPLACE INTO sweeps VALUES (?, ?, ?, ?, ?, ?)",
+                                (point.study, int(point.curve), int(point.size), run, seconds,
+                                 time.time()))
+                con.execute("COMMIT")
+            except BaseException:
+                con.execute("ROLLBACK")
+                raise
+        return known is not None
+
     def set_curve(self, study_id: str, index: int, *, key: str, cut_by_budget: bool,
                   reason: str = "", theory: str | None = None, work_unit: str = "",
                   mechanism_knob: str = "") -> None:
@@ -371,7 +416,20 @@ class Store:
         with self._lock:
             rows = self._con.execute("SELECT point_json FROM points WHERE study_id=? "
                                      "ORDER BY curve, size", (study_id,)).fetchall()
-        return [Point.from_dict(json.loads(r[0])) for r in rows]
+            try:
+                sweeps = self._con.execute("SELECT curve, size, seconds_json FROM sweeps "
+                                           "WHERE study_id=? ORDER BY run", (study_id,)).fetchall()
+            except sqlite3.OperationalError:  # an older store opened read-only
+                sweeps = []
+        latest = {(int(c), int(n)): text for c, n, text in sweeps}   # the last run's wins
+        out = []
+        for (text,) in rows:
+            d = json.loads(text)
+            swept = latest.get((int(d.get("curve", -1)), int(d.get("size", -1))))
+            if swept is not None:
+                d["interleaved_seconds"] = json.loads(swept)
+            out.append(Point.from_dict(d))
+        return out
 
     def runs(self, study_id: str) -> list[dict[str, Any]]:
         """The runs of a study with how many points each measured."""

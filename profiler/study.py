@@ -322,11 +322,13 @@ DEFAULT_CURVES: tuple[DefaultCurve, ...] = (
     # mechanism axis (states per variable).
     DefaultCurve("bayesnet", (_A, _I), "exact", "graph", "chain", 2, 8, 512, 128,
                  queries=12, seconds=8, quick_levels=(_A,), params=(("target_choice", "last"),)),
-    # Three states per variable on the grid: 3**k per elimination step on a k x k grid, steep
-    # enough to tell from a polynomial below the cap. Graph-axis curves ask about the last
-    # variable (target_choice="last"): with random targets the work of a query depends mostly
-    # on where its target sits (pruning keeps only its ancestors), which blurs the curve.
-    DefaultCurve("bayesnet", (_A, _I), "exact", "graph", "grid", 3, 4, 144, 81,
+    # Binary variables on the grid: 2**k per elimination step on a k x k grid, so the curve
+    # reaches k = 12-13 inside the cap: 11-12 sizes over a 36x range. (With three states it
+    # stopped at k = 9, and 7 sizes left the work curve's irregular elimination widths looking
+    # like noise of 0.2-0.34 in ln work, at the fitter's noise limit.) Graph-axis curves ask
+    # about the last variable (target_choice="last"): with random targets the work of a query
+    # depends mostly on where its target sits (pruning keeps only its ancestors).
+    DefaultCurve("bayesnet", (_A, _I), "exact", "graph", "grid", 2, 4, 169, 121,
                  queries=12, seconds=7, quick_levels=(_A,), params=(("target_choice", "last"),)),
     DefaultCurve("bayesnet", (_A, _I), "exact", "mechanism", "chain", 8, 2, 64, 24,
                  queries=12, seconds=2, quick=False),

@@ -93,21 +93,37 @@ def test_too_few_points_give_no_verdict_and_a_reason():
     assert any("too few points" in f for f in a.flags)
 
 
-def test_time_fit_receives_each_points_repeats(monkeypatch):
-    """Per-point repeat seconds are passed to the fitter as repeats for the time fit."""
+def test_time_fit_takes_each_points_fastest_repeat(monkeypatch):
+    """The time fit gets each point's fastest per-query seconds and no repeats (a bootstrap of
+    a minimum is not consistent); a slow spell over one point's contiguous repeats is undone
+    by a faster interleaved repeat."""
+    from dataclasses import replace
+
     seen = []
     real = analysis.fit_series
 
     def spy(sizes, costs, censored, *, repeats=None, seed=0):
-        seen.append(repeats)
+        seen.append((list(costs), repeats))
         return real(sizes, costs, censored, repeats=repeats, seed=seed)
 
     monkeypatch.setattr(analysis, "fit_series", spy)
     curve = make_curve(6, sizes=SIZES)
-    analyse_curve(curve)
-    with_repeats = [r for r in seen if r is not None]
-    assert len(with_repeats) == 1
-    assert with_repeats[0] == [p.repeat_seconds for p in curve.points]
+    slow = curve.points[3]
+    spelled = replace(slow, repeat_seconds=tuple(2.0 * r for r in slow.repeat_seconds),
+                      seconds_median=2.0 * slow.seconds_median,
+                      seconds_min=2.0 * slow.seconds_min,
+                      interleaved_seconds=(1.5 * slow.seconds_min, 0.99 * slow.seconds_min))
+    points = curve.points[:3] + (spelled,) + curve.points[4:]
+    a = analyse_curve(replace(curve, points=points))
+    time_costs = [c for c, r in seen if c == [p.seconds_fastest for p in points]]
+    assert len(time_costs) == 1
+    assert all(r is None for _, r in seen)
+    assert time_costs[0][3] == pytest.approx(0.99 * slow.seconds_min)
+    assert time_costs[0][2] == pytest.approx(min(points[2].repeat_seconds))
+    # Typical (median) over fastest, the median over points: >= 1.
+    ratios = sorted(p.seconds_median / p.seconds_fastest for p in points)
+    assert a.typical_factor == pytest.approx(ratios[len(ratios) // 2])
+    assert a.typical_factor >= 1.0
 
 
 def test_analyse_study_keeps_curve_order():

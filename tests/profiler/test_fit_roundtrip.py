@@ -32,9 +32,10 @@ def test_points_csv_marks_censored_points(measured):
     assert "censored" in header and "curve_key" in header
 
 
-@pytest.mark.parametrize("cost,kind", [("work", "work"), ("seconds_median", "time")])
+@pytest.mark.parametrize("cost,kind", [("work", "work"), ("seconds_fastest", "time")])
 def test_fit_on_points_csv_reproduces_the_run_verdicts(measured, cost, kind):
-    """Same growth class from the CLI's CSV path as from the study's own analysis."""
+    """Same growth class and degree from the CLI's CSV path as from the study's own analysis
+    (time verdicts are fitted on ``seconds_fastest``, the column points.csv carries for it)."""
     result, csv_path = measured
     from_csv = {v["curve"]: v for v in fit_csv(csv_path, cost=cost, curve="curve_key")}
     for analysis in analyse_study(result):
@@ -42,5 +43,20 @@ def test_fit_on_points_csv_reproduces_the_run_verdicts(measured, cost, kind):
         assert ours is not None, analysis.flags
         theirs = from_csv[analysis.curve.spec.key()]
         assert theirs["growth"] == ours.growth, (analysis.curve.spec.key(), theirs, ours.growth)
-        if ours.degree is not None and kind == "work":
+        if ours.degree is not None:
             assert theirs["degree"] == pytest.approx(ours.degree, rel=1e-6)
+
+
+def test_points_carry_their_interleaved_repeats_into_points_csv(measured):
+    """Every ok point got the interleaved sweep's repeats, and seconds_fastest is the least of
+    its contiguous and interleaved repeats."""
+    import csv
+
+    result, csv_path = measured
+    rows = list(csv.DictReader(open(csv_path)))
+    assert rows and all(r["interleaved_seconds"] for r in rows if r["status"] == "ok")
+    for r in rows:
+        if r["status"] != "ok":
+            continue
+        seen = [float(x) for x in (r["repeat_seconds"] + ";" + r["interleaved_seconds"]).split(";")]
+        assert float(r["seconds_fastest"]) == pytest.approx(min(seen), rel=1e-6)

@@ -230,6 +230,29 @@ def test_budget_stops_a_curve_and_says_so():
     assert out.points == () and out.cut_by_budget and out.reason == "budget"
 
 
+def test_interleaved_sweep_retimes_the_points_of_a_finished_curve():
+    """After the curve, each small ok point gets one repeat per round of the sweep; its own
+    measurements are kept and seconds_fastest is the least of all repeats."""
+    revised = []
+    out = run_curve(ctx(interleave_rounds=4), 0, curve("LinearFamily", sizes=(2, 4, 8, 16)),
+                    set(), on_revised=revised.append)
+    assert out.revised == tuple(revised)
+    assert [p.size for p in revised] == [2, 4, 8, 16]
+    for new, old in zip(revised, out.points):
+        assert len(new.interleaved_seconds) == 4 and all(s > 0 for s in new.interleaved_seconds)
+        assert new.repeat_seconds == old.repeat_seconds and new.work == old.work
+        assert new.seconds_fastest == min(new.repeat_seconds + new.interleaved_seconds)
+
+
+def test_no_sweep_when_switched_off_or_when_points_are_long():
+    for settings in ({"interleave_rounds": 0}, {"interleave_repeat_s": 0.0}):
+        revised = []
+        out = run_curve(ctx(**settings), 0, curve("LinearFamily", sizes=(2, 4, 8)), set(),
+                        on_revised=revised.append)
+        assert revised == [] and out.revised == ()
+        assert all(p.interleaved_seconds == () for p in out.points)
+
+
 def test_events_report_each_point():
     events = []
     run_curve(ctx(), 1, curve("LinearFamily", sizes=(2, 3)), set(), on_event=events.append)

@@ -88,6 +88,24 @@ def test_duplicate_point_is_refused(tmp_path):
         assert len(s.points(sid)) == 1
 
 
+def test_sweep_repeats_are_stored_beside_the_point_rows_never_in_them(tmp_path):
+    """The interleaved sweep's repeats come back with their point; the point rows themselves
+    are not rewritten; repeats of a point that is not stored are refused."""
+    with Store(tmp_path / "s.sqlite") as s:
+        sid = s.open_study(SPEC, {}, resume=False)
+        s.add_point(point(sid, 0, 4))
+        s.add_point(point(sid, 0, 8))
+        rows_before = s._con.execute("SELECT * FROM points ORDER BY size").fetchall()
+        assert s.add_sweep(point(sid, 0, 4, interleaved_seconds=(3e-4,)))
+        assert s.add_sweep(point(sid, 0, 4, interleaved_seconds=(1e-4, 2e-4)))  # same run: replaced
+        assert not s.add_sweep(point(sid, 0, 16, interleaved_seconds=(1e-4,)))
+        assert s._con.execute("SELECT * FROM points ORDER BY size").fetchall() == rows_before
+        got = {p.size: p for p in s.points(sid)}
+        assert sorted(got) == [4, 8]
+        assert got[4].interleaved_seconds == (1e-4, 2e-4) and got[4].seconds_fastest == 1e-4
+        assert got[8].interleaved_seconds == ()
+
+
 def test_resume_keys_on_name_and_spec_hash(tmp_path):
     """Same spec + resume: same study; a changed spec: a new study; no resume: a new study."""
     with Store(tmp_path / "s.sqlite") as s:
