@@ -536,7 +536,8 @@ def forward(circuit: Circuit, states: np.ndarray, *, mode: str = "sum",
     engine
         ``"auto"`` (default): in sum mode, the region engine of
         :mod:`model_zoo.circuit.regions` when the circuit is made of region products (vtree
-        circuits), else the layered pass; ``"layers"`` forces the layered pass (every node's
+        circuits; thin batches and K = 1 circuits take its faster exact routes), else the
+        layered pass; ``"layers"`` forces the layered pass (every node's
         value is computed; the reference the region engine is tested against).
 
     Returns
@@ -557,10 +558,10 @@ def forward(circuit: Circuit, states: np.ndarray, *, mode: str = "sum",
     if mode == "sum" and engine == "auto":
         rplan = _region_plan(circuit)
         if rplan is not None:
-            from model_zoo.circuit.regions import root_log_values
+            from model_zoo.circuit.regions import root_log_values_from_states
 
-            plan: _Plan = circuit._plan  # type: ignore[attr-defined]
-            return root_log_values(rplan, _leaf_rows(plan, states, "sum"))
+            return root_log_values_from_states(rplan, circuit._plan,  # type: ignore[attr-defined]
+                                               states)
     values = _run(circuit, states, mode)
     return values[circuit._plan.root_row].copy()  # type: ignore[attr-defined]
 

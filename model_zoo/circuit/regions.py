@@ -19,6 +19,14 @@ this module evaluates the circuit region by region instead of layer by layer:
   products (matrix products are associative), each level renormalised with its log-scale kept
   aside: ``O(log n)`` numpy calls in place of ``O(n)``. For ``m = 1`` the chain is a sum of logs.
 
+Two more routes, chosen per call by :func:`root_log_values_from_states`:
+
+* **K = 1** — when every op has one unit and scalar weights the root's log is a fixed weighted
+  sum of leaf logs plus a constant: one dot product per batch (:class:`LogLinearPlan`).
+* **thin batches** (fewer than ``THIN_MAX_BATCH`` columns) — the same ops in linear space with a
+  log-scale per block and the stack axis last (:class:`ThinPlan`, see the notes above
+  ``THIN_MAX_BATCH``); used only when every weight is positive and not tiny.
+
 Anything else (compiled arithmetic circuits, products feeding several blocks, products of
 products) makes :func:`region_plan` return None and the caller uses the layered engine.
 
@@ -35,7 +43,8 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["region_plan", "root_log_values"]
+__all__ = ["region_plan", "root_log_values", "root_log_values_from_states",
+           "thin_root_log_values"]
 
 #: Chains shorter than this run as ordinary ops (the tree reduction has a fixed overhead).
 _MIN_CHAIN = 8
@@ -85,6 +94,8 @@ class RegionPlan:
     root_row: int
     n_chains: int
     n_chain_links: int
+    thin: Any = None         # ThinPlan for small batches, or None
+    log_linear: Any = None   # LogLinearPlan when every op is scalar, or None
 
 
 def region_plan(plan: Any, n_plan_rows: int) -> RegionPlan | None:
@@ -313,8 +324,12 @@ def region_plan(plan: Any, n_plan_rows: int) -> RegionPlan | None:
     root_row = int(compact[plan.root_row])
     if root_row < 0 or root_block < 0:
         return None
-    return RegionPlan(n_rows=next_row, n_leaves=n_leaves, ops=tuple(final), root_row=root_row,
-                      n_chains=len(chains), n_chain_links=n_links)
+    rp = RegionPlan(n_rows=next_row, n_leaves=n_leaves, ops=tuple(final), root_row=root_row,
+                    n_chains=len(chains), n_chain_links=n_links)
+    return RegionPlan(n_rows=rp.n_rows, n_leaves=rp.n_leaves, ops=rp.ops, root_row=rp.root_row,
+                      n_chains=rp.n_chains, n_chain_links=rp.n_chain_links,
+                      thin=_thin_plan(rp, plan.leaf_logp, plan.leaf_logsum),
+                      log_linear=_log_linear_plan(rp))
 
 
 # -- evaluation ---------------------------------------------------------------------------------
@@ -463,3 +478,338 @@ def root_log_values(rplan: RegionPlan, leaf_values: np.ndarray) -> np.ndarray:
             else:
                 _run_chain(vals, op, batch)
     return vals[rplan.root_row].copy()
+
+
+# -- thin batches: stack-last layout, linear space ----------------------------------------------
+# At small batch the ops above are dominated by numpy's handling of short axes: a reduction over
+# the a = K inputs of (J, a, B) arrays, or a stacked matmul of J tiny matrices, costs ~20-50 ns
+# per stacked item (measured: 15 us for a max over (313, 2, 1), 16 us for np.matmul of 313 2x2),
+# far more than the arithmetic. The thin engine puts the stack axis J (and the batch) *last* so
+# every call runs over long contiguous rows and reductions run over leading axes. It also works in
+# linear space: each block's values are divided by their maximum and the log of it is kept in a
+# per-block scale, so a unit costs no exp and no log (one log per block per op). That is exact
+# arithmetic rearranged, and safe from underflow when every sum weight is positive and not tiny:
+# then each normalised block output is >= w_min times its maximum (the condition is checked when
+# the plan is built; otherwise the log-space ops above are used).
+
+#: Batches below this use the thin engine (at 64 and more the log-space ops meet the goal).
+THIN_MAX_BATCH = 16
+#: Weights and leaf probabilities below this (or zero weights) keep the log-space engine.
+_SAFE_MIN = 1e-60
+#: Normaliser floor: a block that is all zero stays zero and ends as -inf.
+_TINY = 1e-300
+
+
+@dataclass(frozen=True)
+class _TCross:
+    out: int                 # output rows out + mo * J + j
+    blk: int                 # output blocks blk .. blk + J - 1 in the scale table
+    a_rows: np.ndarray       # (a, J)
+    r_rows: np.ndarray       # (r, J)
+    a_blk: np.ndarray | None  # (J,) scale rows of the inputs; None: leaves (scale 0)
+    r_blk: np.ndarray | None
+    w: np.ndarray            # (m, a * r, J, 1): W[mo, i * r + j]
+
+
+@dataclass(frozen=True)
+class _TMix:
+    out: int
+    blk: int
+    rows: np.ndarray         # (k, J)
+    c_blk: np.ndarray | None
+    w: np.ndarray            # (m, k, J, 1)
+
+
+@dataclass(frozen=True)
+class _TChain:
+    out: int
+    blk: int
+    leaf_rows: np.ndarray    # (f, L) top link first
+    base_rows: np.ndarray    # (m,)
+    base_blk: int
+    w: np.ndarray            # (m, m, f, L, 1): M_l[mo, c] = sum_f w[mo, c, f, l] A_f
+
+
+@dataclass(frozen=True)
+class ThinPlan:
+    n_rows: int
+    n_blocks: int            # scale rows, row 0 is the leaves' zero scale
+    n_leaves: int
+    leaf_table: np.ndarray   # (n_leaves * (S + 1),) flat: per leaf [sum p, p_0 .. p_S-1]
+    leaf_base: np.ndarray    # (n_leaves, 1) leaf * (S + 1) + 1
+    n_states: int            # S
+    ops: tuple[Any, ...]
+    root_row: int
+    root_blk: int
+
+
+@dataclass(frozen=True)
+class LogLinearPlan:
+    """Every op has one unit, one input per side and a scalar weight (K = 1): the root's log is
+    ``const + coef @ leaf_log[leaves]``."""
+    leaves: np.ndarray | None  # leaf rows with a nonzero coefficient (None: all)
+    coef: np.ndarray
+    const: float
+
+
+def _log_linear_plan(rp: RegionPlan) -> LogLinearPlan | None:
+    """O(n_rows) once; None unless every op is scalar (a K = 1 circuit)."""
+    for op in rp.ops:
+        if type(op) is _Cross and not (op.m == op.a == op.r == 1):
+            return None
+        if type(op) is _Mix and not (op.m == 1 and op.rows.shape[1] == 1):
+            return None
+        if type(op) is _Chain and op.log_w is None:
+            return None
+    coef = np.zeros(rp.n_rows)
+    coef[rp.root_row] = 1.0
+    const = 0.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for op in reversed(rp.ops):
+            if type(op) is _Chain:
+                c = coef[op.out]
+                if c == 0:
+                    continue
+                coef[op.base_rows[0]] += c
+                np.add.at(coef, op.leaf_rows[:, 0], c)
+                const += c * float(op.log_w.sum())
+                continue
+            j = op.a_rows.shape[0] if type(op) is _Cross else op.rows.shape[0]
+            c = coef[op.out:op.out + j]
+            used = c != 0
+            if not used.any():
+                continue
+            inputs = [op.a_rows[:, 0], op.r_rows[:, 0]] if type(op) is _Cross else [op.rows[:, 0]]
+            for rows in inputs:
+                np.add.at(coef, rows[used], c[used])
+            const += float((c[used] * np.log(op.w.reshape(j)[used])).sum())
+    leaf_coef = coef[:rp.n_leaves]
+    keep = np.flatnonzero(leaf_coef != 0)
+    if keep.shape[0] == rp.n_leaves:
+        return LogLinearPlan(leaves=None, coef=leaf_coef, const=const)
+    return LogLinearPlan(leaves=keep, coef=leaf_coef[keep], const=const)
+
+
+def _thin_plan(rp: RegionPlan, leaf_logp: np.ndarray, leaf_logsum: np.ndarray
+               ) -> ThinPlan | None:
+    """The stack-last re-layout of a region plan, or None when linear space is not safe.
+
+    O(n_rows + weights) once.
+    """
+    n, nl = rp.n_rows, rp.n_leaves
+    with np.errstate(over="ignore"):
+        probs = np.exp(leaf_logp)
+        sums = np.exp(leaf_logsum)
+    pos = np.concatenate([probs[probs > 0], sums[sums > 0]])
+    if pos.size and (pos.min() < _SAFE_MIN or pos.max() > 1 / _SAFE_MIN):
+        return None
+    new = np.arange(n)                      # old compact row -> thin row
+    blk_of = np.zeros(n, dtype=np.int64)    # thin row -> scale row (0 for leaves)
+    next_blk = 1
+    ops: list[Any] = []
+
+    def input_blocks(rows: np.ndarray) -> tuple[np.ndarray | None, bool]:
+        """(J,) scale rows of each input set (rows (J, k) thin; None when all are leaves) and
+        whether every set is one block's rows or leaves only (row 0: the leaves' zero scale)."""
+        b = blk_of[rows]
+        ok = bool((b == b[:, :1]).all())
+        return (None if not b.any() else b[:, 0].copy()), ok
+
+    def weights_ok(w: np.ndarray) -> bool:
+        flat = w.reshape(w.shape[0], -1) if w.ndim > 1 else w
+        return bool(w.size and w.min() >= _SAFE_MIN and np.isfinite(w).all()
+                    and flat.sum(axis=-1).max() <= 1 / _SAFE_MIN)
+
+    for op in rp.ops:
+        if type(op) is _Chain:
+            l_n, m, f = op.leaf_rows.shape[0], op.m, op.f
+            w = op.w.reshape(l_n, m, m, f)                       # [l, mo, c, f]
+            if not weights_ok(op.w.reshape(l_n * m, m * f)):
+                return None
+            base = new[op.base_rows]
+            if (base < nl).any() or (blk_of[base] != blk_of[base[0]]).any():
+                return None
+            ops.append(_TChain(out=op.out, blk=next_blk, leaf_rows=new[op.leaf_rows].T.copy(),
+                               base_rows=base, base_blk=int(blk_of[base[0]]),
+                               w=np.ascontiguousarray(w.transpose(1, 2, 3, 0))[..., None]))
+            blk_of[op.out:op.out + m] = next_blk
+            next_blk += 1
+            continue
+        if type(op) is _Cross:
+            j_n, m, a, r = op.a_rows.shape[0], op.m, op.a, op.r
+            w = op.w.reshape(j_n, m, r, a)                       # [j, mo, rj, ai]
+            if not weights_ok(w.reshape(j_n * m, r * a)):
+                return None
+            a_rows, r_rows = new[op.a_rows], new[op.r_rows]
+            a_blk, ok_a = input_blocks(a_rows)
+            r_blk, ok_r = input_blocks(r_rows)
+            if not (ok_a and ok_r):
+                return None
+            w4 = np.ascontiguousarray(w.transpose(1, 3, 2, 0).reshape(m, a * r, j_n))
+            thin = _TCross(out=op.out, blk=next_blk, a_rows=a_rows.T.copy(),
+                           r_rows=r_rows.T.copy(), a_blk=a_blk, r_blk=r_blk, w=w4[..., None])
+        else:
+            j_n, m, k = op.rows.shape[0], op.m, op.rows.shape[1]
+            if not weights_ok(op.w.reshape(j_n * m, k)):
+                return None
+            rows = new[op.rows]
+            c_blk, ok = input_blocks(rows)
+            if not ok:
+                return None
+            thin = _TMix(out=op.out, blk=next_blk, rows=rows.T.copy(), c_blk=c_blk,
+                         w=np.ascontiguousarray(op.w.transpose(1, 2, 0))[..., None])
+        # outputs: old rows out + j m + mo -> thin rows out + mo J + j
+        jj, mm = np.meshgrid(np.arange(j_n), np.arange(m), indexing="ij")
+        new[op.out + jj * m + mm] = op.out + mm * j_n + jj
+        blk_of[op.out + mm * j_n + jj] = next_blk + jj
+        next_blk += j_n
+        ops.append(thin)
+    s = leaf_logp.shape[1]
+    table = np.concatenate([sums[:, None], probs], axis=1)      # column 0: variable free
+    root = int(new[rp.root_row])
+    return ThinPlan(n_rows=n, n_blocks=next_blk, n_leaves=nl, leaf_table=table.reshape(-1),
+                    leaf_base=(np.arange(nl) * (s + 1) + 1)[:, None], n_states=s,
+                    ops=tuple(ops), root_row=root, root_blk=int(blk_of[root]))
+
+
+def _normalise_into(out: np.ndarray, dest: np.ndarray, log_scale: np.ndarray) -> None:
+    """``dest = out / max_0(out)`` and ``log_scale = log max_0(out)`` (max over axis 0)."""
+    mx = out.max(axis=0)
+    np.maximum(mx, _TINY, out=mx)
+    np.divide(out, mx, out=dest)
+    np.log(mx, out=log_scale)
+
+
+def _thin_cross(vals, scale, op: _TCross, batch: int) -> None:
+    m, ar, j_all = op.w.shape[0], op.w.shape[1], op.w.shape[2]
+    slab = vals[op.out:op.out + m * j_all].reshape(m, j_all, batch)
+    step = max(1, _CHUNK_ELEMENTS // max(1, m * ar * batch))
+    for j0 in range(0, j_all, step):
+        j1 = min(j_all, j0 + step)
+        whole = j0 == 0 and j1 == j_all
+        ar_ = op.a_rows if whole else op.a_rows[:, j0:j1]
+        rr_ = op.r_rows if whole else op.r_rows[:, j0:j1]
+        av, rv = vals[ar_], vals[rr_]                            # (a, J, B), (r, J, B)
+        p = (av[:, None] * rv[None]).reshape(ar, j1 - j0, batch)
+        w = op.w if whole else op.w[:, :, j0:j1]
+        if ar == 1:
+            out = w[:, 0] * p[0]
+        else:
+            out = (w * p[None]).sum(axis=1)                     # (m, J, B)
+        s = scale[op.blk + j0:op.blk + j1]
+        _normalise_into(out, slab if whole else slab[:, j0:j1], s)
+        if op.a_blk is not None:
+            s += scale[op.a_blk if whole else op.a_blk[j0:j1]]
+        if op.r_blk is not None:
+            s += scale[op.r_blk if whole else op.r_blk[j0:j1]]
+
+
+def _thin_mix(vals, scale, op: _TMix, batch: int) -> None:
+    m, k, j_all = op.w.shape[0], op.w.shape[1], op.w.shape[2]
+    slab = vals[op.out:op.out + m * j_all].reshape(m, j_all, batch)
+    step = max(1, _CHUNK_ELEMENTS // max(1, m * k * batch))
+    for j0 in range(0, j_all, step):
+        j1 = min(j_all, j0 + step)
+        cv = vals[op.rows[:, j0:j1]]                             # (k, J, B)
+        out = (op.w[:, :, j0:j1] * cv[None]).sum(axis=1)         # (m, J, B)
+        s = scale[op.blk + j0:op.blk + j1]
+        _normalise_into(out, slab[:, j0:j1], s)
+        if op.c_blk is not None:
+            s += scale[op.c_blk[j0:j1]]
+
+
+def _thin_renormalise(p: np.ndarray, log_scale: np.ndarray) -> None:
+    """Divide each matrix ``p[:, :, l, b]`` by its largest entry; add its log to log_scale."""
+    m = p.shape[0]
+    mx = p.reshape(m * m, *p.shape[2:]).max(axis=0)
+    np.maximum(mx, _TINY, out=mx)
+    p /= mx
+    log_scale += np.log(mx)
+
+
+def _thin_chain(vals, scale, op: _TChain, batch: int) -> None:
+    m, f, n_links = op.w.shape[0], op.w.shape[2], op.w.shape[3]
+    step = max(2, _CHUNK_ELEMENTS // max(1, m * m * max(m, f) * batch))
+    v = vals[op.base_rows]                                      # (m, B), normalised
+    log_v = scale[op.base_blk].copy()
+    for hi in range(n_links, 0, -step):
+        lo = max(0, hi - step)
+        leaves = vals[op.leaf_rows[:, lo:hi]]                   # (f, L, B)
+        w = op.w[:, :, :, lo:hi]                                 # (m, m, f, L, 1)
+        if f == 1:
+            mats = w[:, :, 0] * leaves[0]                        # (m, m, L, B)
+        else:
+            mats = (w * leaves[None, None]).sum(axis=2)
+        ls = np.zeros((hi - lo, batch))
+        _thin_renormalise(mats, ls)
+        while mats.shape[2] > 1:
+            odd = mats.shape[2] % 2
+            if odd:
+                last, last_s = mats[:, :, -1:], ls[-1:]
+                mats, ls = mats[:, :, :-1], ls[:-1]
+            # (M_{2i} M_{2i+1})[i, j] = sum_k a[i, k] b[k, j]
+            prod = (mats[:, :, None, 0::2] * mats[None, :, :, 1::2]).sum(axis=1)
+            ls = ls[0::2] + ls[1::2]
+            if odd:
+                prod = np.concatenate([prod, last], axis=2)
+                ls = np.concatenate([ls, last_s])
+            mats = prod
+            _thin_renormalise(mats, ls)
+        v = (mats[:, :, 0] * v[None]).sum(axis=1)               # (m, B)
+        log_v = log_v + ls[0]
+        mx = v.max(axis=0)
+        np.maximum(mx, _TINY, out=mx)
+        v = v / mx
+        log_v += np.log(mx)
+    vals[op.out:op.out + m] = v
+    scale[op.blk] = log_v
+
+
+def thin_root_log_values(tp: ThinPlan, leaf_var: np.ndarray, states: np.ndarray) -> np.ndarray:
+    """Root log-values ``(batch,)`` from ``(n_variables, batch)`` states (-1 = marginalised);
+    states must lie in ``-1 .. n_states - 1`` (the caller checks).
+
+    O(n_edges x batch) arithmetic in O(depth) numpy calls per op kind, O(n_rows x batch) memory.
+    """
+    batch = states.shape[1]
+    vals = np.empty((tp.n_rows, batch))
+    idx = states[leaf_var]
+    idx += tp.leaf_base
+    np.take(tp.leaf_table, idx, out=vals[:tp.n_leaves])
+    scale = np.empty((tp.n_blocks, batch))
+    scale[0] = 0.0
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore", under="ignore"):
+        for op in tp.ops:
+            kind = type(op)
+            if kind is _TCross:
+                _thin_cross(vals, scale, op, batch)
+            elif kind is _TMix:
+                _thin_mix(vals, scale, op, batch)
+            else:
+                _thin_chain(vals, scale, op, batch)
+        return np.log(vals[tp.root_row]) + scale[tp.root_blk]
+
+
+def root_log_values_from_states(rplan: RegionPlan, plan: Any, states: np.ndarray) -> np.ndarray:
+    """Root log-values ``(batch,)`` from ``(n_variables, batch)`` int64 states (-1 = free).
+
+    Picks the cheapest exact route: a K = 1 circuit is a weighted sum of leaf logs (one dot
+    product); a thin batch (< ``THIN_MAX_BATCH`` columns) with states in range uses the
+    stack-last linear-space engine; anything else the log-space region ops.
+    """
+    from model_zoo.circuit.core import _leaf_rows
+
+    batch = states.shape[1]
+    if rplan.log_linear is not None:
+        ll: LogLinearPlan = rplan.log_linear
+        leaf = _leaf_rows(plan, states, "sum")
+        if ll.leaves is not None:
+            leaf = leaf[ll.leaves]
+        with np.errstate(invalid="ignore"):
+            return ll.const + ll.coef @ leaf
+    tp: ThinPlan | None = rplan.thin
+    if tp is not None and batch < THIN_MAX_BATCH and states.size:
+        lo, hi = states.min(), states.max()
+        if lo >= -1 and hi < tp.n_states:
+            return thin_root_log_values(tp, plan.leaf_var, states)
+    return root_log_values(rplan, _leaf_rows(plan, states, "sum"))
