@@ -188,7 +188,9 @@ def results_json(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> dict
             "mechanism_knob": c.mechanism_knob, "work_unit": c.work_unit, "theory": c.theory,
             "cut_by_budget": c.cut_by_budget, "agreement": a.agreement,
             "agreement_note": a.agreement_note, "flags": list(a.flags),
-            "points": [p.to_dict() for p in sorted(c.points, key=lambda p: p.size)],
+            "typical_over_fastest": a.typical_factor,
+            "points": [{**p.to_dict(), "seconds_fastest": p.seconds_fastest}
+                       for p in sorted(c.points, key=lambda p: p.size)],
             "verdict": {"work": _verdict_dict(a.work, s.key()),
                         "time": _verdict_dict(a.time, s.key()),
                         "predicted": _verdict_dict(a.predicted, s.key())},
@@ -556,6 +558,13 @@ def summary_markdown(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> 
     units = sorted({(a.curve.spec.family, a.curve.work_unit or "operations") for a in analyses})
     if units:
         lines += ["", "Work units: " + "; ".join(f"{_md(f)}: {_md(u)}" for f, u in units) + "."]
+    factors = sorted(a.typical_factor for a in analyses if a.typical_factor is not None)
+    if factors:
+        lines += ["", "By time, each point is its fastest per-query repeat, over its own "
+                  "repeats and an interleaved sweep of the curve's sizes in random order "
+                  "(interference only adds time); a typical (median) repeat was "
+                  f"{factors[len(factors) // 2]:.2f}x the fastest on this machine (range "
+                  f"{factors[0]:.2f}-{factors[-1]:.2f}x over curves)."]
     notes = [a for a in analyses if a.agreement == "disagrees"]
     if notes:
         lines += ["", "## Disagreements with theory", ""]
@@ -707,8 +716,9 @@ def render_html(result: StudyResult, analyses: Sequence[CurveAnalysis],
     for name, path in sorted(figures.items()):
         if name.startswith("figures/compare_"):
             comps.append(f"<figure class=\"compare\">{_img(path, 'comparison ' + name)}"
-                         f"<figcaption>{_e(name)}: every family's measured medians on one "
-                         "axis. Work units differ between families (see the verdict table); "
+                         f"<figcaption>{_e(name)}: every family's measured points (by time, "
+                         "each point's fastest repeat) on one axis. Work units differ between "
+                         "families (see the verdict table); "
                          "compare slopes, not heights.</figcaption></figure>")
     sections.append("<section id=\"compare\"><h2>Comparisons</h2>" + "".join(comps) +
                     "</section>")

@@ -179,3 +179,23 @@ def test_unmeasured_family_gets_a_reason_not_an_estimate(study):
     assert p.estimate.seconds is None and p.fits == "unknown"
     assert "no associational exact curve of linear_scm" in p.fits_note
     assert math.isfinite(p.ranking[0]["seconds_per_query"]["median"])
+
+
+def test_time_estimates_are_scaled_from_fastest_to_typical_repeats():
+    """Time laws are fitted on each point's fastest repeat; when typical repeats run 1.5x
+    slower (a loaded machine), the planner's central value and upper bound carry the 1.5x, the
+    lower bound stays at the fastest law. t_fastest = 1e-5 * n: at n = 100, 1e-3 s."""
+    from dataclasses import replace
+
+    base = make_curve(0, law="power", param=1.0, sizes=SIZES, noise=0.0)
+    points = tuple(replace(p, repeat_seconds=(p.seconds_min,) + (1.5 * p.seconds_min,) * 4,
+                           seconds_median=1.5 * p.seconds_min) for p in base.points)
+    result = make_study([replace(base, points=points)])
+    analyses = analyse_study(result)
+    assert analyses[0].typical_factor == pytest.approx(1.5)
+    p = plan_workload(result, Workload(family="bayesnet", level="associational", graph_size=100,
+                                       n_queries=10), analyses=analyses)
+    s = p.estimate.seconds
+    assert s.median == pytest.approx(1.5e-3, rel=0.05)
+    assert s.lower <= 1e-3 * 1.02 and s.upper >= 1.5e-3
+    assert any("median/fastest" in n for n in p.estimate.notes)
