@@ -29,8 +29,8 @@ Engines
 -------
 ``exact`` enumerates the exogenous configurations ("worlds") that can matter for the query
 (the exogenous parents of the query's ancestral set; ``prune=False`` enumerates them all), in
-chunks, pushes each chunk through the
-mechanisms as dense matrix products (worlds x features @ weights, float64, C-contiguous) and
+chunks, pushes each chunk through the mechanisms as dense float64 matrix products (worlds x
+features @ weights, every layer, the first on the one-hot codes with its bias folded in) and
 weights each world by P(u):
 
 - associational P(Y=y | E=e): one pass;
@@ -44,6 +44,18 @@ the query)``), runs the same passes and keeps the samples whose (factual) world 
 evidence (rejection). The estimate is the accepted fraction; its standard error is the binomial
 one with the Agresti-Coull adjustment (two successes and two failures added), so that an estimate
 of 0 or 1 does not claim zero uncertainty.
+
+Speed (what the engine does besides the counted products; see ``tests/perf/bench_neural_scm.py``).
+Every layer's product is computed as its transpose, (outputs x inputs) @ (inputs x worlds): the
+one-hot inputs are written as one contiguous row per state, and bias additions, ReLUs and the
+comparison of two logits run over contiguous rows; a two-state output layer is computed as two
+matrix-vector products (BLAS is slow on two-row matrix products). Work buffers are shared by
+the mechanisms and chunks of one call (and one set is pooled per instance); a query's plan and
+its enumeration layout (the trailing exogenous values, their one-hot codes and world weights;
+at most ``_LAYOUT_CACHE_BYTES`` = 32 MiB in all) are cached on the instance, so a repeated
+query skips planning and enumerating. Every counted product is still performed densely,
+multiply-add for multiply-add (no row gather for the one-hot layer, no difference-of-logits
+shortcut on the two-state output layer).
 
 Work unit: *multiply-adds*. A mechanism costs the multiply-adds of its dense layers,
 ``in*H + (depth-1)*H*H + H*S`` (``in`` = one-hot input width; bias additions, ReLU and argmax not
@@ -86,6 +98,7 @@ binomial proportions. The American Statistician 52(2):119-126.
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 import pathlib
@@ -125,6 +138,8 @@ _MAX_REDRAWS = 50
 _MIN_MARGIN = 1e-7
 #: Bytes a chunk of worlds may use (values, one-hot inputs, hidden activations).
 _CHUNK_BYTES = 2 ** 25
+#: Bytes of enumeration layouts (values, one-hot codes, weights) cached per instance.
+_LAYOUT_CACHE_BYTES = 2 ** 25
 _REFERENCE_MAX_ENTRIES = 200_000
 
 
@@ -151,6 +166,18 @@ class Mechanism:
         object.__setattr__(self, "biases", b)
         object.__setattr__(self, "folded",
                            np.ascontiguousarray(np.vstack([w[0], b[0][None, :]])))
+        # the engine computes every product transposed, (outputs x inputs) @ (inputs x rows):
+        # activations are (units x rows), so that bias additions, ReLUs and the comparison of
+        # two logits run over contiguous rows (and BLAS is a little faster on these shapes)
+        object.__setattr__(self, "_weights_t", (np.ascontiguousarray(self.folded.T),)
+                           + tuple(np.ascontiguousarray(v.T) for v in w[1:]))
+        object.__setattr__(self, "_biases_col", (None,)
+                           + tuple(np.ascontiguousarray(v[:, None]) for v in b[1:]))
+        # work buffers of the engine (see _Scratch.get): the inputs, then each layer's output
+        # (hidden layers alternate between two slots per width)
+        object.__setattr__(self, "_keys", (("x", w[0].shape[0] + 1, None),)
+                           + tuple(("h", v.shape[1], None, k % 2) for k, v in enumerate(w[:-1]))
+                           + (("o", w[-1].shape[1], None),))
 
     @property
     def n_inputs(self) -> int:
@@ -213,6 +240,22 @@ class NeuralSCM:
         object.__setattr__(self, "_children", tuple(tuple(c) for c in children))
         object.__setattr__(self, "_offsets", tuple(tuple(int(o) for o in _input_offsets(
             self.input_cards(i))) for i in range(len(self.variables))))
+        # per mechanism input: (first row, last row + 1, the states as a column) of its one-hot
+        # block in the engine's transposed input matrix
+        object.__setattr__(self, "_blocks", tuple(
+            tuple((o, o + c, np.arange(c, dtype=np.intp)[:, None])
+                  for o, c in zip(self._offsets[i], self.input_cards(i)))  # type: ignore[attr-defined]
+            for i in range(len(self.variables))))
+        # query plans and enumeration layouts, keyed by (query, prune): repeated queries skip
+        # the pure-Python planning (bounded; see _cached)
+        object.__setattr__(self, "_cache", {})
+
+    def __getstate__(self) -> dict:
+        # the cache (plans, layouts, pooled buffers) is rebuilt where the instance lands
+        return {**self.__dict__, "_cache": {}}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
 
     # -- small accessors ----------------------------------------------------------------------
     def index(self, name: str) -> int:
@@ -259,57 +302,112 @@ def _input_offsets(cards: Sequence[int]) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 # the vectorised evaluation (engine path)
 # ---------------------------------------------------------------------------------------------
-_ROW_BASES: dict[tuple[int, int, int], np.ndarray] = {}
+class _Scratch:
+    """Work buffers for chunks of ``m`` rows, shared by every mechanism and chunk of one call.
+
+    Mechanisms with equal layer widths reuse the same arrays (keys from ``Mechanism._keys``), so
+    a pass allocates only its outputs after the first chunk. Memory: one input matrix, two
+    hidden matrices and one logit matrix per distinct width, O(m x widths).
+    """
+
+    __slots__ = ("m", "buffers")
+
+    def __init__(self, m: int) -> None:
+        self.m = m
+        self.buffers: dict[tuple, np.ndarray] = {}
+
+    def get(self, key: tuple) -> np.ndarray:
+        """The buffer for ``key`` = (kind, rows or None, columns or None): ``None`` is ``m``."""
+        buf = self.buffers.get(key)
+        if buf is None:
+            kind, rows, cols = key[:3]
+            buf = self.buffers[key] = np.empty((self.m if rows is None else rows,
+                                                self.m if cols is None else cols))
+            if kind == "x":
+                buf[-1] = 1.0  # the folded bias's constant input
+        return buf
 
 
-def _row_base(m: int, width: int, offset: int) -> np.ndarray:
-    """``arange(m) * width + offset``, cached: where the one-hot block at ``offset`` of each row
-    of a chunk starts in the flattened input matrix."""
-    key = (m, width, offset)
-    base = _ROW_BASES.get(key)
-    if base is None:
-        if len(_ROW_BASES) > 256:
-            _ROW_BASES.clear()
-        base = _ROW_BASES[key] = np.arange(m, dtype=np.intp) * width + offset
-    return base
+def _borrow_scratch(scm: NeuralSCM, m: int) -> _Scratch:
+    """A pooled :class:`_Scratch` of ``m`` rows from ``scm``'s cache, or a new one. The pool
+    keeps at most one (the last returned): buffers of one chunk, O(m x widths) bytes. Threads
+    answering on one instance each get their own (``list.pop`` / ``append`` are atomic)."""
+    pool = scm._cache.setdefault("scratch", [])  # type: ignore[attr-defined]
+    try:
+        scratch = pool.pop()
+    except IndexError:
+        return _Scratch(m)
+    return scratch if scratch.m == m else _Scratch(m)
 
 
-def _eval_mechanism(mech: Mechanism, inputs: Sequence[np.ndarray], offsets: Sequence[int],
-                    m: int) -> np.ndarray:
-    """States chosen by ``mech`` for ``m`` rows of input state indices; dense matmuls."""
-    width = mech.n_inputs + 1
-    x = np.zeros((m, width))
-    x[:, -1] = 1.0  # the folded bias
-    flat = x.reshape(-1)
-    for off, col in zip(offsets, inputs):
-        flat[_row_base(m, width, off) + col] = 1.0
-    h = x @ mech.folded
-    last = len(mech.weights) - 1
-    for k in range(1, last + 1):
-        np.maximum(h, 0.0, out=h)
-        h = h @ mech.weights[k]
-        if k < last or h.shape[1] != 2:
-            h += mech.biases[k]
-    if last == 0:
-        return np.argmax(h, axis=1)
-    if h.shape[1] == 2:
-        # argmax of (h + b) for two states (a tie goes to state 0): the same additions, without
-        # a slow broadcast over a two-column array or a strided reduction
-        b = mech.biases[last]
-        return ((h[:, 1] + b[1]) > (h[:, 0] + b[0])).astype(np.intp)
-    return np.argmax(h, axis=1)
+def _return_scratch(scm: NeuralSCM, scratch: _Scratch) -> None:
+    pool = scm._cache.setdefault("scratch", [])  # type: ignore[attr-defined]
+    if not pool:
+        pool.append(scratch)
+
+
+def _eval_mechanism(mech: Mechanism, inputs: Sequence[np.ndarray],
+                    blocks: Sequence[tuple[int, int, np.ndarray]], scratch: _Scratch,
+                    out: np.ndarray) -> np.ndarray:
+    """States chosen by ``mech`` for ``scratch.m`` rows of input state indices, written to
+    ``out`` (integer, length m); dense matmuls.
+
+    The one-hot inputs are written transposed, (features x rows), one broadcast comparison per
+    input (``blocks``: its rows and states) or a copy where an input is given as its codes, a
+    (states x rows) float array. The products are the dense ones that
+    :func:`enumeration_shapes` lists, ``(rows x k) @ (k x n)`` per layer, each computed as its
+    transpose ``(n x k) @ (k x rows)`` (the same multiply-adds), so that activations and logits
+    are contiguous rows; two logits are computed as two matrix-vector products. Cost: rows x multiply-adds, plus O(rows x (inputs + units)) for the
+    one-hot codes, the bias additions, the ReLUs and the comparison.
+    """
+    keys = mech._keys  # type: ignore[attr-defined]
+    weights_t = mech._weights_t  # type: ignore[attr-defined]
+    biases = mech._biases_col  # type: ignore[attr-defined]
+    h = scratch.get(keys[0])
+    for (lo, hi, states), col in zip(blocks, inputs):
+        if col.ndim == 2:  # one-hot codes already made (the enumerated exogenous inputs)
+            np.copyto(h[lo:hi], col)
+        else:
+            np.equal(col, states, out=h[lo:hi])
+    last = len(weights_t) - 1
+    for k, w in enumerate(weights_t):
+        if k:
+            np.maximum(h, 0.0, out=h)  # ReLU of the hidden layer before
+        nxt = scratch.get(keys[k + 1])
+        if k == last and w.shape[0] == 2:
+            # two logits: one matrix-vector product per row is faster than a two-row
+            # matrix product in BLAS (the same multiply-adds)
+            np.matmul(w[0], h, out=nxt[0])
+            np.matmul(w[1], h, out=nxt[1])
+            h = nxt
+        else:
+            h = np.matmul(w, h, out=nxt)
+        if k:  # the first layer's bias is folded in
+            np.add(h, biases[k], out=h)
+    if h.shape[0] == 2:
+        # argmax of two logits, a tie going to state 0
+        return np.greater(h[1], h[0], out=out)
+    return np.argmax(h, axis=0, out=out)
 
 
 def _run_pass(scm: NeuralSCM, order: Sequence[int], values: dict[int, np.ndarray],
-              exo: dict[int, np.ndarray], clamp: dict[int, int], m: int) -> None:
-    """Fill ``values`` for ``order`` (topological) from exogenous values; clamped ones constant."""
-    offsets = scm.input_offsets
-    for i in order:
+              exo: dict[int, np.ndarray], clamp: dict[int, int], m: int,
+              scratch: _Scratch | None = None, codes: dict[int, np.ndarray] | None = None) -> None:
+    """Fill ``values`` for ``order`` (topological) from exogenous values; clamped ones constant.
+    ``codes`` may give some exogenous inputs as (states x m) one-hot codes instead."""
+    if scratch is None or scratch.m != m:
+        scratch = _Scratch(m)
+    if codes:
+        exo = {**exo, **codes}
+    blocks = scm._blocks  # type: ignore[attr-defined]
+    outs = np.empty((len(order), m), dtype=np.intp)
+    for k, i in enumerate(order):
         if i in clamp:
-            values[i] = np.full(m, clamp[i], dtype=np.intp)
+            outs[k] = clamp[i]
+            values[i] = outs[k]
             continue
         inputs = [values[p] for p in scm.parents[i]] + [exo[j] for j in scm.exogenous_inputs[i]]
-        values[i] = _eval_mechanism(scm.mechanisms[i], inputs, offsets[i], m)
+        values[i] = _eval_mechanism(scm.mechanisms[i], inputs, blocks[i], scratch, outs[k])
 
 
 def evaluate_worlds(scm: NeuralSCM, exogenous_values: np.ndarray, *,
@@ -605,7 +703,33 @@ def _assignment(scm: NeuralSCM, pairs, what: str) -> tuple[tuple[int, int], ...]
     return tuple(out)
 
 
+def _cached(scm: NeuralSCM, kind: str, key: Any, make, *, max_bytes: int | None = None):
+    """``make()`` memoised in ``scm``'s cache under ``(kind, key)``; no caching for unhashable
+    keys. A kind holds at most 256 entries and, with ``max_bytes``, at most that many bytes of
+    arrays (``nbytes`` of the entries): it is emptied when a new entry would pass either."""
+    try:
+        table = scm._cache.setdefault(kind, {})  # type: ignore[attr-defined]
+        hit = table.get(key)
+    except TypeError:
+        return make()
+    if hit is None:
+        hit = make()
+        size = hit.nbytes if max_bytes is not None else 0
+        if max_bytes is not None and size > max_bytes:
+            return hit
+        used = sum(v.nbytes for v in table.values()) if max_bytes is not None else 0
+        if len(table) >= 256 or (max_bytes is not None and used + size > max_bytes):
+            table.clear()
+        table[key] = hit
+    return hit
+
+
 def _plan(scm: NeuralSCM, query: Query, *, prune: bool = True) -> _Plan:
+    """The query's plan (cached per query: planning is pure Python, ~20 us)."""
+    return _cached(scm, "plan", (query, bool(prune)), lambda: _make_plan(scm, query, prune=prune))
+
+
+def _make_plan(scm: NeuralSCM, query: Query, *, prune: bool = True) -> _Plan:
     if query.kind != "probability":
         raise UnsupportedQuery(f"neural_scm answers probability queries, not {query.kind!r}")
     target = _assignment(scm, query.target, "target")
@@ -634,24 +758,33 @@ def _plan(scm: NeuralSCM, query: Query, *, prune: bool = True) -> _Plan:
                  int(macs), scm.log10_worlds(exo), target, evidence, query.level)
 
 
-def _outcomes(scm: NeuralSCM, plan: _Plan, exo: dict[int, np.ndarray], m: int
+def _outcomes(scm: NeuralSCM, plan: _Plan, exo: dict[int, np.ndarray], m: int,
+              scratch: _Scratch | None = None, codes: dict[int, np.ndarray] | None = None
               ) -> tuple[np.ndarray, np.ndarray]:
-    """(evidence mask, target mask) over m worlds."""
+    """(evidence mask, target mask) over m worlds (``codes``: see :func:`_run_pass`)."""
+    if scratch is None or scratch.m != m:
+        scratch = _Scratch(m)
     values: dict[int, np.ndarray] = {}
-    _run_pass(scm, plan.factual, values, exo, plan.clamp, m)
-    mask = np.ones(m, dtype=bool)
-    for i, s in plan.evidence:
-        mask &= values[i] == s
+    _run_pass(scm, plan.factual, values, exo, plan.clamp, m, scratch, codes)
+    mask = _event(values, plan.evidence, m)
     if plan.level is Level.COUNTERFACTUAL:
         cf = dict(values)  # non-descendants of X keep their factual values
         for i, s in plan.cf_clamp.items():
             cf[i] = np.full(m, s, dtype=np.intp)
-        _run_pass(scm, plan.recompute, cf, exo, {}, m)
+        _run_pass(scm, plan.recompute, cf, exo, {}, m, scratch, codes)
         values = cf
-    hit = mask.copy()
-    for i, s in plan.target:
-        hit &= values[i] == s
-    return mask, hit
+    return mask, _event(values, plan.target, m, within=mask)
+
+
+def _event(values: dict[int, np.ndarray], pairs: Sequence[tuple[int, int]], m: int,
+           within: np.ndarray | None = None) -> np.ndarray:
+    """Boolean mask of the rows where every (variable, state) pair holds, and ``within``
+    (never modified; returned itself when there are no pairs)."""
+    out = within
+    for i, s in pairs:
+        eq = values[i] == s
+        out = eq if out is None else np.logical_and(out, eq, out=eq)
+    return np.ones(m, dtype=bool) if out is None else out
 
 
 def _chunk_rows(scm: NeuralSCM, plan: _Plan) -> int:
@@ -671,13 +804,52 @@ def _world_split(cards: Sequence[int], rows: int) -> int:
     return split
 
 
+@dataclass(frozen=True, eq=False)
+class _Layout:
+    """How the exact engine walks a plan's worlds: chunks follow the mixed radix, the trailing
+    exogenous inputs are enumerated once (their values and weights repeat in every chunk of
+    ``rows`` worlds); the leading ones are constant in a chunk."""
+
+    n_worlds: int
+    rows: int
+    leading: tuple[int, ...]
+    leading_cards: tuple[int, ...]
+    trailing_values: dict
+    trailing_codes: dict
+    trailing_weights: np.ndarray
+
+    @property
+    def nbytes(self) -> int:
+        arrays = [self.trailing_weights, *self.trailing_values.values(),
+                  *self.trailing_codes.values()]
+        return int(sum(a.nbytes for a in arrays))
+
+
+def _enumeration_layout(scm: NeuralSCM, plan: _Plan) -> _Layout:
+    """Cost: O(rows x trailing inputs); memory: the same, at most ``_chunk_rows`` rows."""
+    cards = [scm.exogenous_card(j) for j in plan.exogenous]
+    split = _world_split(cards, _chunk_rows(scm, plan))
+    grid = _all_configs(cards[split:])
+    values = {j: np.ascontiguousarray(grid[:, k]) for k, j in enumerate(plan.exogenous[split:])}
+    weights = np.ones(grid.shape[0])
+    for j, col in values.items():
+        weights *= scm.exogenous_probabilities[j][col]
+    # the one-hot codes of the trailing inputs, (states x rows), copied into each mechanism's
+    # input matrix instead of compared again in every call
+    codes = {j: (col == np.arange(scm.exogenous_card(j))[:, None]).astype(np.float64)
+             for j, col in values.items()}
+    return _Layout(int(math.prod(cards)), int(grid.shape[0]), tuple(plan.exogenous[:split]),
+                   tuple(cards[:split]), values, codes, weights)
+
+
 def enumeration_shapes(scm: NeuralSCM, query: Query, *, prune: bool = True
                        ) -> tuple[int, list[tuple[int, int, int]]]:
     """The matrix products the exact engine performs for ``query``, for benchmarks.
 
     Returns ``(n_chunks, shapes)``: every chunk of worlds multiplies, for each evaluated
     mechanism and layer, an (rows x k) by (k x n) pair of float64 matrices, listed in ``shapes``
-    as ``(rows, k, n)`` (the first layer's k includes the folded bias column). Timing
+    as ``(rows, k, n)`` (the first layer's k includes the folded bias column; the engine
+    computes each product as its transpose, ``(n x k) @ (k x rows)``). Timing
     ``np.matmul`` on these shapes ``n_chunks`` times gives the machine's rate on the same work.
     """
     plan = _plan(scm, query, prune=prune)
@@ -1251,31 +1423,25 @@ class NeuralSCMFamily(FamilyBase):
             raise ModelError(
                 f"exact enumeration needs 10^{plan.log10_worlds:.1f} exogenous worlds, beyond "
                 f"max_worlds={limit} for {query.describe()} on {scm.name}; use method 'sampling'")
-        cards = [scm.exogenous_card(j) for j in plan.exogenous]
-        n_worlds = int(np.prod(cards, dtype=np.int64)) if cards else 1
-        rows = _chunk_rows(scm, plan)
-        # Chunks follow the mixed radix: the trailing exogenous inputs are enumerated once (their
-        # values and weights repeat in every chunk); the leading ones are constant in a chunk.
-        split = _world_split(cards, rows)
-        trailing = plan.exogenous[split:]
-        t_cards = cards[split:]
-        grid = _all_configs(t_cards)
-        m = grid.shape[0]
-        t_exo = {j: np.ascontiguousarray(grid[:, k]) for k, j in enumerate(trailing)}
-        t_w = np.ones(m)
-        for j, col in t_exo.items():
-            t_w *= scm.exogenous_probabilities[j][col]
-        leading = plan.exogenous[:split]
+        # Keyed by structure (which exogenous variables, how many rows per chunk), not by the
+        # query: the layout holds no evidence, so queries of one shape share it, as bayesnet's
+        # plans are shared per query shape.
+        layout = _cached(scm, "layout", (tuple(plan.exogenous), _chunk_rows(scm, plan)),
+                         lambda: _enumeration_layout(scm, plan), max_bytes=_LAYOUT_CACHE_BYTES)
+        m = layout.rows
+        scratch = _borrow_scratch(scm, m)
         num = den = 0.0
-        for lead in np.ndindex(*cards[:split]):
+        for lead in itertools.product(*map(range, layout.leading_cards)):
             scale = 1.0
-            exo = dict(t_exo)
-            for j, u in zip(leading, lead):
+            exo = dict(layout.trailing_values)
+            for j, u in zip(layout.leading, lead):
                 scale *= float(scm.exogenous_probabilities[j][u])
                 exo[j] = np.full(m, u, dtype=np.intp)
-            mask, hit = _outcomes(scm, plan, exo, m)
-            den += scale * float(t_w[mask].sum())
-            num += scale * float(t_w[hit].sum())
+            mask, hit = _outcomes(scm, plan, exo, m, scratch, layout.trailing_codes)
+            den += scale * float(np.dot(layout.trailing_weights, mask))
+            num += scale * float(np.dot(layout.trailing_weights, hit))
+        _return_scratch(scm, scratch)
+        n_worlds = layout.n_worlds
         if den <= 0.0:
             raise ModelError(_describe_zero(query))
         return Answer(value=min(1.0, num / den), work=float(n_worlds) * plan.multiply_adds,
@@ -1289,10 +1455,11 @@ class NeuralSCMFamily(FamilyBase):
         rng = make_rng(int(self._p("seed")), "sampling", zlib.crc32(query.describe().encode()))
         rows = _chunk_rows(scm, plan)
         n_acc = n_hit = 0
+        scratch = _Scratch(min(rows, n))
         for start in range(0, n, rows):
             m = min(rows, n - start)
             exo = _sample_exogenous(scm, plan.exogenous, m, rng)
-            mask, hit = _outcomes(scm, plan, exo, m)
+            mask, hit = _outcomes(scm, plan, exo, m, scratch)
             n_acc += int(mask.sum())
             n_hit += int(hit.sum())
         if n_acc == 0:
@@ -1373,7 +1540,11 @@ class NeuralSCMFamily(FamilyBase):
         return float(math.prod(cards)) * plan.multiply_adds
 
     def predicted_bytes(self, instance: NeuralSCM, query: Query, *, method: str) -> float | None:
-        """Arrays of one chunk of worlds (or samples) plus the weights; bounded by the chunk."""
+        """Arrays of one chunk of worlds (or samples) plus the weights; bounded by the chunk.
+
+        Per row: the values of the evaluated variables and the exogenous inputs, one work buffer
+        per distinct input width, two per distinct hidden width and one for the logits
+        (:class:`_Scratch`), and for exact the cached layout (values, one-hot codes, weight)."""
         self.check_method(method)
         scm = instance
         plan = _plan(scm, query, prune=bool(self._p("prune")))
@@ -1383,9 +1554,13 @@ class NeuralSCMFamily(FamilyBase):
             rows = min(rows, int(10 ** min(plan.log10_worlds, 18)))
         else:
             rows = min(rows, int(self._p("n_samples")))
-        widths = [w.shape[1] for v in used for w in scm.mechanisms[v].weights] or [1]
-        inputs = [scm.mechanisms[v].n_inputs + 1 for v in used] or [1]
-        per_row = 8 * (2 * len(used) + len(plan.exogenous) + max(inputs) + 2 * max(widths) + 4)
+        hidden = {w.shape[1] for v in used for w in scm.mechanisms[v].weights[:-1]}
+        outputs = [scm.mechanisms[v].n_outputs for v in used] or [1]
+        inputs = {scm.mechanisms[v].n_inputs + 1 for v in used} or {1}
+        per_row = 8 * (2 * len(used) + len(plan.exogenous) + sum(inputs) + 2 * sum(hidden)
+                       + max(outputs) + 4)
+        if method == "exact":
+            per_row += 8 * sum(1 + scm.exogenous_card(j) for j in plan.exogenous)
         weights = 8 * sum(scm.mechanisms[v].n_parameters for v in used)
         return float(rows * per_row + weights)
 
