@@ -15,6 +15,12 @@ This is the one place where points become fitter input. The rules are:
   the profile likelihood. :attr:`CurveAnalysis.typical_factor` (median over points of
   median / fastest) says how much slower a typical repeat was, for planners;
   by work, the mean work per query is used (work is deterministic);
+* a decided time verdict whose class differs from a decided work verdict is downgraded to
+  ``inconclusive`` (leaning its own way): over a limited range, fixed overheads and the memory
+  hierarchy bend a time curve (seconds per unit of work changing a few-fold with size) enough
+  to pass for the other class, while time is work times the cost of a unit; the reason names
+  the spread of seconds per unit of work so a reviewer can judge (a large one says the work
+  count misses a cost);
 * the *predicted* verdict is the same fit on the family's ``predicted_work`` at the measured
   sizes (censored points included: a formula needs no run), and the theory-vs-measurement
   agreement comes from :func:`profiler.audit.compare_with_theory`.
@@ -155,6 +161,27 @@ def _time_series(points: Iterable[Point]):
     return sizes, costs, cens
 
 
+_DECIDED = ("polynomial", "exponential")
+
+
+def _check_against_work(time, work, points: Sequence[Point]):
+    """The time verdict, downgraded to inconclusive when its class contradicts the work's."""
+    if (time is None or work is None or time.growth not in _DECIDED
+            or work.growth not in _DECIDED or time.growth == work.growth):
+        return time
+    per_unit = [float(p.seconds_fastest) / float(p.work) for p in points
+                if p.status == "ok" and _finite_positive(p.seconds_fastest)
+                and _finite_positive(p.work)]
+    spread = (f"; seconds per unit of work range over {max(per_unit) / min(per_unit):.1f}x "
+              "across the sizes" if per_unit else "")
+    reason = (f"time says {time.growth} but work says {work.growth}: over a limited range fixed "
+              f"overheads and the memory hierarchy bend a time curve{spread}; the work verdict is "
+              "the machine-independent one (a large spread would mean the work count misses a "
+              "cost)")
+    return replace(time, growth="inconclusive", leaning=time.growth,
+                   reasons=tuple(time.reasons) + (reason,))
+
+
 def _typical_factor(points: Iterable[Point]) -> float | None:
     ratios = sorted(float(p.seconds_median) / float(p.seconds_fastest) for p in points
                     if p.status == "ok" and _finite_positive(p.seconds_median)
@@ -240,6 +267,7 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
         time, why = fit_series(sizes, costs, cens, seed=seed)
         if why:
             flags.append(f"time: {why}")
+        time = _check_against_work(time, work, points)
     sizes, costs, cens = _predicted_series(points)
     predicted, _ = fit_series(sizes, costs, cens, seed=seed)
 

@@ -179,3 +179,21 @@ def test_same_study_is_not_fitted_twice(monkeypatch):
     again = analyse_study(study)
     assert calls == [0, 1]
     assert [a.key for a in again] == [a.key for a in first]
+
+
+def test_a_time_class_that_contradicts_the_work_class_is_downgraded():
+    """Work linear, time doubling per size: the time verdict is not allowed to stand as
+    'exponential' beside a polynomial work verdict; it leans that way, with the reason."""
+    from dataclasses import replace
+
+    base = make_curve(7, law="power", param=1.0, sizes=EXP_SIZES, noise=0.0)
+    points = tuple(replace(p, seconds_median=1e-6 * 2.0 ** p.size,
+                           seconds_min=1e-6 * 2.0 ** p.size,
+                           repeat_seconds=(1e-6 * 2.0 ** p.size,) * 5) for p in base.points)
+    a = analyse_curve(replace(base, points=points))
+    assert a.work.growth == "polynomial"
+    assert a.time.growth == "inconclusive" and a.time.leaning == "exponential"
+    assert any("time says exponential but work says polynomial" in r for r in a.time.reasons)
+    # Agreeing classes are left alone.
+    linear = analyse_curve(make_curve(0, law="power", param=1.0, sizes=SIZES))
+    assert linear.time.growth == "polynomial"
