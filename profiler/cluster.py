@@ -364,8 +364,8 @@ def run_curves_dask(address: str | None, ctx: Any, spec: StudySpec,
     on_worker
         Called with ``(worker id, environment)`` for every Dask worker that ran a task.
     on_revised
-        Called with each point the curve's interleaved sweep re-issued (the caller replaces
-        the stored one); only points already handed to ``on_point`` are passed.
+        Called with each point the curve's interleaved sweep re-issued (the caller stores its
+        ``interleaved_seconds``); only points already handed to ``on_point`` are passed.
     on_event
         Progress events (the runner's kinds: ``curve_start``, ``point_start``, ``point``,
         ``curve_done``), in this thread.

@@ -342,9 +342,10 @@ class StudyContext:
     ``interleave_rounds`` is how many rounds of the interleaved sweep follow a curve (0: none);
     points whose repeat lasts longer than ``interleave_repeat_s`` stay out of it, and the sweep
     may take at most ``interleave_share`` of the time the curve took (and never more than the
-    budget left). ``launcher`` is ``"auto"`` (fork workers from a preloaded zygote where the platform allows,
-    :mod:`profiler.zygote`, else spawn an interpreter) or ``"spawn"`` (always a fresh
-    interpreter); the environment variable ``INFERCOST_LAUNCHER=spawn`` forces the latter too.
+    budget left). ``launcher`` is ``"auto"`` (fork workers from a preloaded zygote where the
+    platform allows, :mod:`profiler.zygote`, else spawn an interpreter) or ``"spawn"`` (always a
+    fresh interpreter); the environment variable ``INFERCOST_LAUNCHER=spawn`` forces the latter
+    too.
     """
 
     study_id: str
@@ -575,7 +576,6 @@ class _WorkerState:
             n = max(int(out.get("n_queries") or 1), 1)
             out["seconds_median"] = (time.perf_counter() - answering_started) / n
         return out
-
 
     def interleave(self, plan: Sequence[tuple[int, int]], rounds: int, deadline_s: float,
                    seed: int) -> dict[str, Any]:
@@ -1303,7 +1303,8 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
         Override the schedule (default :func:`profiler.schedule.make_schedule` of ``spec``).
     on_revised
         Called with each point re-issued by the interleaved sweep (same size, same
-        measurements, ``interleaved_seconds`` filled in): the caller replaces the stored one.
+        measurements, ``interleaved_seconds`` filled in): the caller stores the new repeats
+        beside the stored point (:meth:`profiler.store.Store.add_sweep`).
 
     Returns
     -------

@@ -164,8 +164,14 @@ class Point:
         Interference on a shared machine (another process, the hypervisor, frequency changes)
         only ever adds time to a repeat of fixed work, and it comes in spells that outlast a
         point, so the fastest of repeats spread over the whole curve is the steadiest estimate
-        of what the work itself costs (Chen & Revels 2016). For a censored point it is the
-        lower bound in ``seconds_median``; None when nothing was timed.
+        of what the work itself costs. For a censored point it is the lower bound in
+        ``seconds_median``; None when nothing was timed.
+
+        References
+        ----------
+        Chen, J. and Revels, J. (2016). Robust benchmarking in noisy environments.
+        arXiv:1608.04295 (cited from memory): the minimum as the estimator of choice when
+        noise is additive and non-negative.
         """
         if self.status != "ok":
             return self.seconds_median if self.is_censored else None

@@ -117,8 +117,11 @@ def run() -> list[dict]:
     sizes = list(range(8, 8 + 20))
     import time
 
+    # Without the interleaved sweep: it is measuring, not the cost of isolation.
+    bare = StudyContext(study_id="bench", point_timeout_s=30.0, memory_mb=1024, threads=1,
+                        interleave_rounds=0)
     t0 = time.monotonic()
-    out = run_curve(ctx, 0, _spec(sizes), set())
+    out = run_curve(bare, 0, _spec(sizes), set())
     total = time.monotonic() - t0
     walls = [w for w, inside in out.point_seconds.values() if inside is not None]
     insides = [inside for w, inside in out.point_seconds.values() if inside is not None]
