@@ -123,8 +123,9 @@ def test_local_cluster_listens_on_loopback_only(dask_client):
 
 # ---------------------------------------------------------------------------- streaming, workers
 def test_points_stream_back_and_every_worker_records_its_environment(dask_client, tmp_path):
-    """Each curve is one task; points carry their worker; the store records the Dask workers'
-    and the measuring processes' environments, each with a calibration figure."""
+    """Each curve is one task; points carry their worker and their interleaved repeats; the
+    store records the Dask workers' and the measuring processes' environments, each with a
+    calibration figure."""
     spec = StudySpec(name="dask-stream", curves=(toy(1, [1, 2, 3]), toy(2, [1, 2, 3])),
                      budget_s=120, point_timeout_s=10)
     summary, result = run_on_dask(dask_client, spec, tmp_path / "s.sqlite")
@@ -135,6 +136,8 @@ def test_points_stream_back_and_every_worker_records_its_environment(dask_client
         for p in c.points:
             assert "@tcp://127.0.0.1:" in p.worker
             assert calibration_seconds(p, result.workers) is not None
+            # The curve's interleaved sweep ran on the Dask worker and reached the store.
+            assert len(p.interleaved_seconds) >= 3
     dask_ids = [w for w in result.workers if w.startswith("dask:")]
     assert dask_ids and all(result.workers[w]["calibration"]["seconds"] > 0 for w in dask_ids)
 
