@@ -1204,7 +1204,9 @@ class _CurveDriver:
         if rounds < 3:
             return []
         setup_s = sum(float(p.build_seconds or 0.0) + r / max(p.loops, 1) for p, r in chosen)
-        deadline_s = rounds * round_s * 1.5 + setup_s * 1.5 + 0.5
+        # The whole allowance, not the predicted rounds: a machine slower now than while the
+        # points ran still gets its rounds while they fit.
+        deadline_s = max(float(allowed_s), rounds * round_s * 1.5) + setup_s * 1.5 + 0.5
         try:
             w = self._ensure()
             w.send({"op": "interleave", "rounds": rounds, "deadline_s": deadline_s,
