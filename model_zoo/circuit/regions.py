@@ -25,7 +25,10 @@ Two more routes, chosen per call by :func:`root_log_values_from_states`:
   sum of leaf logs plus a constant: one dot product per batch (:class:`LogLinearPlan`).
 * **thin batches** (fewer than ``THIN_MAX_BATCH`` columns) — the same ops in linear space with a
   log-scale per block and the stack axis last (:class:`ThinPlan`, see the notes above
-  ``THIN_MAX_BATCH``); used only when every weight is positive and not tiny.
+  ``THIN_MAX_BATCH``); used only when every weight is positive and not tiny. When the blocks form
+  a tree (vtree circuits) a lean program runs instead: renormalisation only where plan-time
+  bounds require it, K = 2 levels merged in pairs, chains contracted in bit-reversed halves (see
+  the notes above ``_LEAN_LIMIT``).
 
 Anything else (compiled arithmetic circuits, products feeding several blocks, products of
 products) makes :func:`region_plan` return None and the caller uses the layered engine.
@@ -38,7 +41,7 @@ sequential ones. Memory: ``O((n_leaves + n_sums) x batch)`` plus one chunk of ch
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -541,6 +544,7 @@ class ThinPlan:
     ops: tuple[Any, ...]
     root_row: int
     root_blk: int
+    lean: Any = None         # _LeanProgram when the blocks form a tree and bounds allow, or None
 
 
 @dataclass(frozen=True)
@@ -667,9 +671,13 @@ def _thin_plan(rp: RegionPlan, leaf_logp: np.ndarray, leaf_logsum: np.ndarray
     s = leaf_logp.shape[1]
     table = np.concatenate([sums[:, None], probs], axis=1)      # column 0: variable free
     root = int(new[rp.root_row])
-    return ThinPlan(n_rows=n, n_blocks=next_blk, n_leaves=nl, leaf_table=table.reshape(-1),
-                    leaf_base=(np.arange(nl) * (s + 1) + 1)[:, None], n_states=s,
-                    ops=tuple(ops), root_row=root, root_blk=int(blk_of[root]))
+    tp = ThinPlan(n_rows=n, n_blocks=next_blk, n_leaves=nl, leaf_table=table.reshape(-1),
+                  leaf_base=(np.arange(nl) * (s + 1) + 1)[:, None], n_states=s,
+                  ops=tuple(ops), root_row=root, root_blk=int(blk_of[root]))
+    lean = _lean_program(tp)
+    if lean is None:
+        return tp
+    return replace(tp, lean=lean)
 
 
 def _normalise_into(out: np.ndarray, dest: np.ndarray, log_scale: np.ndarray) -> None:
@@ -772,10 +780,16 @@ def thin_root_log_values(tp: ThinPlan, leaf_var: np.ndarray, states: np.ndarray)
     O(n_edges x batch) arithmetic in O(depth) numpy calls per op kind, O(n_rows x batch) memory.
     """
     batch = states.shape[1]
-    vals = np.empty((tp.n_rows, batch))
-    idx = states[leaf_var]
+    vals = np.empty((tp.n_rows + 1, batch))       # + a constant-one row (padding links)
+    idx = states.take(leaf_var, axis=0)
     idx += tp.leaf_base
     np.take(tp.leaf_table, idx, out=vals[:tp.n_leaves])
+    if tp.lean is not None:
+        vals[tp.n_rows] = 1.0
+        if np.geterr()["under"] == "ignore":      # the default; errstate costs ~3 us a call
+            return _lean_root_log_values(tp, vals, batch)
+        with np.errstate(under="ignore"):         # negligible terms may underflow
+            return _lean_root_log_values(tp, vals, batch)
     scale = np.empty((tp.n_blocks, batch))
     scale[0] = 0.0
     with np.errstate(divide="ignore", invalid="ignore", over="ignore", under="ignore"):
@@ -790,6 +804,567 @@ def thin_root_log_values(tp: ThinPlan, leaf_var: np.ndarray, states: np.ndarray)
         return np.log(vals[tp.root_row]) + scale[tp.root_blk]
 
 
+# -- thin batches, lean program: the block tree, renormalised only where bounds require ----------
+# Profiled at batch 1 (~10^4 edges, K >= 2), the thin ops above make ~14 numpy calls per op
+# (1.5-3 us each on the bench machine): two gathers, the product, the weighted sum, then max /
+# floor / divide / log of the renormalisation and two gathers + adds carrying the input blocks'
+# log-scales. When every block (the sum outputs of one op row) feeds exactly one input set of one
+# later block and the root feeds none -- a tree of blocks, as in every vtree circuit -- most go:
+# * the root is linear in each block's values, so dividing a block by c divides the root by c:
+#   the log-scale is the sum of the logs of every divisor (one log + sum at the end), with no
+#   per-block scale table;
+# * a block is renormalised only when bounds no longer prove its units stay in
+#   [exp(-_LEAN_LIMIT), exp(_LEAN_LIMIT)]. With positive weights every unit of a product block
+#   lies in [w_min, max weight-row sum] x the product of its input sets' maxima; bounds on each
+#   block's maximum are propagated at plan time and a block is renormalised when they leave
+#   [-span, span], span = (limit - widest log-weight) / (input sets of its consumer), so the
+#   next op is still in range. Units above exp(-600) keep full relative precision; a term that
+#   underflows is < 1e-307 against a unit > 1e-260;
+# * K = 2: two levels merge into one op over four input sets (16 terms per unit, coefficients
+#   summed at plan time), halving the ops of a balanced circuit;
+# * chains: a product's row sums lie within the products of its factors' row sums, and with
+#   positive links the ratio of two entries in one column (row) of P Q is at least the smallest
+#   such ratio of P (of Q) -- Birkhoff's contraction argument -- so entries stay within
+#   exp(-(s_r + s_c)) of the maximum, s_r and s_c read off the weights: a renormalisation every
+#   several tree levels suffices. Chunks of c 2^k links (c = 1, 3, 5, 7; identity padding) are
+#   stored bit-reversed so each level multiplies two contiguous halves (einsum at width 2,
+#   stacked matmul wider); the last c matrices, the vector, and on right-linear circuits the
+#   base's op and the root's op, are one einsum;
+# * weighted sums reduce over a *leading* axis (contiguous rows); ops with few blocks
+#   (J <= _LEAN_MATMUL_J) run as one stacked matmul, which beats broadcasting there.
+# Zero inputs stay exactly zero (a zero block makes its parent zero, the root ends as -inf).
+
+#: Units of every computed block stay within exp(+-_LEAN_LIMIT) (doubles reach exp(+-708)).
+_LEAN_LIMIT = 600.0
+#: Ops with at most this many blocks use stacked np.matmul; wider ops broadcast and reduce.
+_LEAN_MATMUL_J = 40
+#: Odd chunk factors c of chains (c 2^k links); the last c matrices form one einsum.
+_LEAN_ODD = (3, 5, 7)
+#: Two levels of two-set ops merge into one four-set op when it has at most this many product
+#: terms per unit (K = 2: 16; halves the numpy calls of a balanced circuit).
+_LEAN_FUSE_Q = 16
+
+
+@dataclass(frozen=True)
+class _LeanProgram:
+    steps: tuple[tuple, ...]
+    n_renorm: int            # ops or chain levels that renormalise (for tests and notes)
+    n_levels: int            # ops plus chain tree levels
+
+
+@dataclass(frozen=True)
+class _SetProduct:
+    """``out[:, j] = sum_q w[:, q, j] prod_s X_s[x_s(q), j]`` over input sets ``X_s`` given as
+    ``(rows (k_s, J), scale rows (J,) or None for leaves)``; q runs over the sets in C order."""
+    out: int
+    blk: int
+    sets: tuple[tuple[np.ndarray, np.ndarray | None], ...]
+    w: np.ndarray            # (m, q, J)
+
+
+def _lean_ops(tp: ThinPlan) -> list[Any]:
+    """The thin plan's cross and mix ops as :class:`_SetProduct`; chains kept as they are."""
+    gops: list[Any] = []
+    for op in tp.ops:
+        if type(op) is _TChain:
+            gops.append(op)
+        elif type(op) is _TCross:
+            gops.append(_SetProduct(op.out, op.blk, ((op.a_rows, op.a_blk),
+                                                     (op.r_rows, op.r_blk)), op.w[..., 0]))
+        else:
+            gops.append(_SetProduct(op.out, op.blk, ((op.rows, op.c_blk),), op.w[..., 0]))
+    return gops
+
+
+def _fuse_levels(gops: list[Any]) -> list[Any]:
+    """Merge two-set ops whose input sets are all outputs of two-set ops into one four-set op
+    (two levels in one pass), when the merged product has at most ``_LEAN_FUSE_Q`` terms per
+    unit (K = 2). Coefficients ``sum_ir W[o, i, r] W_A[i, .] W_R[r, .]`` are exact sums of
+    positive products. Top-down, so a merged op's children are never merged upwards.
+
+    O(n_blocks) Python steps and O(weights x 4) numpy work, once per plan.
+    """
+    where: dict[int, tuple[int, int]] = {}             # block -> (gop, position in it)
+    for gi, g in enumerate(gops):
+        if type(g) is not _TChain:
+            j_n = g.w.shape[2]
+            for jj in range(j_n):
+                where[g.blk + jj] = (gi, jj)
+    lower: set[int] = set()
+    absorbed: dict[int, dict[int, int]] = {}            # merged op -> {kid op: blocks read}
+    out: dict[int, _SetProduct] = {}
+    for gi in range(len(gops) - 1, -1, -1):
+        g = gops[gi]
+        if type(g) is _TChain or gi in lower or len(g.sets) != 2:
+            continue
+        sides = []
+        for rows, blks in g.sets:
+            if blks is None:
+                break
+            kids = {where.get(int(b), (-1, 0))[0] for b in blks}
+            if any(k < 0 or type(gops[k]) is _TChain or len(gops[k].sets) != 2
+                   for k in kids):
+                break
+            sizes = {tuple(s[0].shape[0] for s in gops[k].sets) for k in kids}
+            if len(sizes) != 1:
+                break
+            sides.append((rows, blks, kids, sizes.pop()))
+        if len(sides) != 2:
+            continue
+        q = int(np.prod(sides[0][3]) * np.prod(sides[1][3]))
+        if q > _LEAN_FUSE_Q:
+            continue
+        w_up = g.w                                   # (m, a r, J)
+        m, _, j_n = w_up.shape
+        new_sets: list[tuple[np.ndarray, np.ndarray | None]] = []
+        factors = []
+        ok = True
+        for rows, blks, kids, sizes in sides:
+            k_n = rows.shape[0]
+            sub_rows = [np.empty((sz, j_n), dtype=np.int64) for sz in sizes]
+            sub_blks = [np.zeros(j_n, dtype=np.int64) for _ in sizes]
+            sub_leaf = [np.zeros(j_n, dtype=bool) for _ in sizes]
+            wk = np.empty((k_n, int(np.prod(sizes)), j_n))
+            for j in range(j_n):
+                kid_i, jj = where[int(blks[j])]
+                kid = gops[kid_i]
+                kid_j = kid.w.shape[2]
+                mo = (rows[:, j] - kid.out) // kid_j            # unit of the kid block
+                wk[:, :, j] = kid.w[mo, :, jj]
+                for s, (srows, sblk) in enumerate(kid.sets):
+                    sub_rows[s][:, j] = srows[:, jj]
+                    if sblk is None:
+                        sub_leaf[s][j] = True
+                    else:
+                        sub_blks[s][j] = sblk[jj]
+            for s in range(len(sizes)):
+                if sub_leaf[s].all():
+                    new_sets.append((sub_rows[s], None))
+                elif not sub_leaf[s].any():
+                    new_sets.append((sub_rows[s], sub_blks[s]))
+                else:
+                    ok = False                          # a set mixing leaves and blocks
+            factors.append(wk)
+        if not ok:
+            continue
+        fed: dict[int, int] = {}                        # kid op -> its blocks read here
+        for rows, blks, kids, sizes in sides:
+            lower.update(kids)
+            for b in blks:
+                kid_i = where[int(b)][0]
+                fed[kid_i] = fed.get(kid_i, 0) + 1
+        absorbed[gi] = fed
+        a_n, r_n = sides[0][0].shape[0], sides[1][0].shape[0]
+        w4 = np.einsum("oirj,iaj,rbj->oabj", w_up.reshape(m, a_n, r_n, j_n), factors[0],
+                       factors[1]).reshape(m, q, j_n)
+        out[gi] = _SetProduct(g.out, g.blk, tuple(new_sets), w4)
+    return _apply_fusion(gops, out, absorbed, lower)
+
+
+def _apply_fusion(gops: list[Any], merged: dict[int, _SetProduct],
+                  absorbed: dict[int, dict[int, int]], lower: set[int]) -> list[Any]:
+    """The ops after merging. An op that would feed merged and unmerged ops alike is kept and
+    its merged consumers are undone (its divisors would count for blocks the root no longer
+    reads), until no op is half consumed."""
+    merged = dict(merged)
+    while True:
+        read: dict[int, int] = {}
+        for up in merged:
+            for kid, n in absorbed[up].items():
+                read[kid] = read.get(kid, 0) + n
+        half = {kid for kid, n in read.items() if n < gops[kid].w.shape[2]}
+        undo = [up for up in merged if half.intersection(absorbed[up])]
+        if not undo:
+            break
+        for up in undo:
+            del merged[up]
+    result = []
+    for gi, g in enumerate(gops):
+        if gi in merged:
+            result.append(merged[gi])
+        elif gi in read:
+            continue                                    # every block feeds a merged op
+        else:
+            result.append(g)
+    return result
+
+
+def _lean_program(tp: ThinPlan, forced: frozenset = frozenset()) -> _LeanProgram | None:
+    """The lean schedule of a thin plan, or None (blocks not a tree, or bounds too wide).
+
+    O(n_rows + weights) once (twice per chain whose base must be renormalised after all). Each
+    step is a tuple read by :func:`_lean_root_log_values`; ``forced``: steps that renormalise.
+    """
+    n_blocks = tp.n_blocks
+    uses = np.zeros(n_blocks, dtype=np.int64)
+    for op in tp.ops:
+        if type(op) is _TChain:
+            uses[op.base_blk] += 1
+            continue
+        for b in ((op.a_blk, op.r_blk) if type(op) is _TCross else (op.c_blk,)):
+            if b is not None:
+                np.add.at(uses, b, 1)
+    uses[0] = 1                                   # the leaves' pseudo-block
+    expect = np.ones(n_blocks, dtype=np.int64)
+    expect[tp.root_blk] = 0
+    if tp.root_blk == 0 or not (uses == expect).all():
+        return None
+    table = tp.leaf_table
+    pos = table[table > 0]
+    if not pos.size:
+        return None
+    leaf_lb, leaf_ub = float(np.log(pos.min())), float(np.log(pos.max()))
+    gops = _fuse_levels(_lean_ops(tp))
+    # log-bounds on each block's maximum, relative to what was divided out (row 0: leaves)
+    lb = np.zeros(n_blocks)
+    ub = np.zeros(n_blocks)
+    lb[0], ub[0] = leaf_lb, leaf_ub
+    widest = [-leaf_lb, leaf_ub]
+    arity = np.ones(n_blocks, dtype=np.int64)      # input sets of each block's consumer
+    for g in gops:
+        if type(g) is _TChain:
+            w = g.w
+            widest += [-float(np.log(w.min())), float(np.log(w.sum(axis=2).max()))]
+            continue
+        w = g.w
+        widest += [-float(np.log(w.min())), float(np.log(w.sum(axis=1).max()))]
+        for _, blks in g.sets:
+            if blks is not None:
+                arity[blks] = len(g.sets)
+    steps: list[tuple] = []
+    producer: dict[int, int] = {}                  # block -> index of the step writing it
+    table2 = table.reshape(tp.n_leaves, tp.n_states + 1)
+    n_renorm = n_levels = 0
+    for g in gops:
+        if type(g) is _TChain:
+            op = g
+            base = int(op.base_blk)
+            span = (_LEAN_LIMIT - max(widest)) / int(arity[op.blk])
+            step = _lean_chain(op, table2, tp.n_rows, (float(lb[base]), float(ub[base])), span)
+            if step is None:
+                i = producer.get(base, -1)
+                if i < 0 or steps[i][-1]:
+                    return None
+                # too wide with the base as computed: plan again, renormalising the base's op
+                return _lean_program(tp, forced | {i})
+            steps.append(step)
+            for _, _, _, flags, _, renorm_v in step[4]:
+                n_renorm += int(sum(flags)) + renorm_v
+                n_levels += len(flags)
+            lb[op.blk], ub[op.blk] = step[6], step[7]
+            producer[int(op.blk)] = len(steps) - 1
+            continue
+        w = g.w                                 # (m, q, J)
+        m, q, j_n = w.shape
+        sets = g.sets
+        sizes = [rows.shape[0] for rows, _ in sets]
+        grid = np.indices(sizes).reshape(len(sets), -1)          # (s, q): C order
+        idx = np.stack([rows[grid[s]] for s, (rows, _) in enumerate(sets)])   # (s, q, J)
+        lo = float(np.log(w.min()))
+        hi = float(np.log(w.sum(axis=1).max()))
+        for _, b in sets:
+            lo += lb[0] if b is None else float(lb[b].min())
+            hi += ub[0] if b is None else float(ub[b].max())
+        if lo < -_LEAN_LIMIT or hi > _LEAN_LIMIT:
+            return None
+        blocks = np.arange(g.blk, g.blk + j_n)
+        producer.update((int(b), len(steps)) for b in blocks)
+        span = (_LEAN_LIMIT - max(widest)) / float(arity[blocks].max())
+        if not span > 0:
+            return None
+        renorm = lo < -span or hi > span or len(steps) in forced
+        if renorm:
+            lb[blocks] = ub[blocks] = 0.0
+            n_renorm += 1
+        else:
+            lb[blocks], ub[blocks] = lo, hi
+        n_levels += 1
+        mm = j_n <= _LEAN_MATMUL_J
+        if mm:                                     # (s, J, q) gathers, (J, m, q) weights
+            idx = np.ascontiguousarray(idx.transpose(0, 2, 1))
+            w = np.ascontiguousarray(w.transpose(2, 0, 1))
+        else:                                      # (s, q, J) gathers, (q, m, J, 1) weights
+            w = np.ascontiguousarray(w.transpose(1, 0, 2))[..., None]
+        steps.append((mm, g.out, m, q, j_n, len(sets), idx, w, renorm))
+    steps = _fold_into_chains(steps, tp)
+    return _LeanProgram(steps=tuple(steps), n_renorm=n_renorm, n_levels=n_levels)
+
+
+def _fold_into_chains(steps: list[tuple], tp: ThinPlan) -> list[tuple]:
+    """Fold into a one-chunk chain's final einsum the op computing its base from two leaf sets
+    (when the einsum keeps <= 512 terms per column) and the root op reading only the chain's
+    output: two ops fewer on a right-linear circuit. The same sums of products, reordered."""
+    drop: set[int] = set()
+    for ci, st in enumerate(steps):
+        if st[0] is not None or len(st[4]) != 1:
+            continue
+        _, out, m, stacked, chunks, base_rows, v_lo, v_hi, _, _ = st
+        rows, w, c, flags, subs, renorm_v = chunks[0]
+        base_fold = root_fold = None
+        for bi in range(ci):
+            b = steps[bi]
+            if (b[0] is True and b[4] == 1 and b[5] == 2 and not b[8] and b[1] <= base_rows.min()
+                    and base_rows.max() < b[1] + b[2] and (b[6] < tp.n_leaves).all()
+                    and m ** (c + 1) * b[3] <= 512):
+                wb = b[7][0]                               # (m_b, q): rows b.out + mo
+                pairs = np.ascontiguousarray(b[6][:, 0])          # (2, q) leaf rows
+                base_fold = (np.ascontiguousarray(wb[base_rows - b[1]]), pairs,
+                             np.concatenate([rows.ravel(), pairs.ravel()]))
+                drop.add(bi)
+                break
+        last = steps[-1]
+        if (ci == len(steps) - 2 and not renorm_v and last[0] is True and last[2] == 1
+                and last[4] == 1 and last[5] == 1 and last[1] == tp.root_row
+                and (last[6] >= out).all() and (last[6] < out + m).all()):
+            wm = np.zeros(m)
+            np.add.at(wm, last[6][0, 0] - out, last[7][0, 0])
+            root_fold = (wm, tp.root_row)
+            drop.add(len(steps) - 1)
+        if base_fold is None and root_fold is None:
+            continue
+        head, _, tail = subs.partition("->")
+        pre, _, vec = head.rpartition(",")             # vec: "jb"
+        if base_fold is not None:
+            head = pre + ",jy,yb,yb"
+        subs = ("i," + head + "->b") if root_fold is not None else head + "->" + tail
+        steps[ci] = (None, out, m, stacked, ((rows, w, c, flags, subs, renorm_v),), base_rows,
+                     v_lo, v_hi, base_fold, root_fold)
+    return [st for i, st in enumerate(steps) if i not in drop]
+
+
+def _chain_schedule(lo: float, hi: float, depth: int, c: int, s_r: float, s: float,
+                    log_m: float, base: tuple[float, float]
+                    ) -> tuple[tuple[bool, ...], float, float] | None:
+    """Which of the ``depth + 1`` tree levels of one chunk renormalise, and log-bounds on the
+    units of the resulting vector; None if unsafe.
+
+    ``lo, hi``: log-bounds on the row sums of the level-0 links; a product's row sums are
+    within the products of its factors' (``[2 lo, 2 hi]``, or those of a factor when paired
+    with a padding identity); a renormalised level has row sums in ``[exp(-s_r), m]``. Every
+    entry is >= its matrix maximum x exp(-s) >= (min row sum / m) x exp(-s), which must stay
+    above exp(-_LEAN_LIMIT) at the next level and in the final product of the ``c`` remaining
+    matrices with the base vector (log-bounds ``base`` on its maximum).
+    """
+    flags = []
+    for level in range(depth + 1):
+        last = level == depth
+        k = c if last else 2
+        b_lo, b_hi = base if last else (0.0, 0.0)
+
+        def unsafe(lo_: float, hi_: float) -> bool:
+            return (min(k * lo_, lo_, 0.0) - log_m - s + b_lo < -_LEAN_LIMIT
+                    or max(k * hi_, hi_, 0.0) + b_hi > _LEAN_LIMIT)
+
+        flag = unsafe(lo, hi)
+        if flag:
+            lo, hi = -s_r, log_m
+            if unsafe(lo, hi):
+                return None
+        flags.append(flag)
+        if last:
+            return (tuple(flags), min(c * lo, lo, 0.0) - log_m - s + b_lo,
+                    max(c * hi, hi, 0.0) + b_hi)
+        lo, hi = min(2 * lo, lo, 0.0), max(2 * hi, hi, 0.0)
+    raise AssertionError("unreachable")
+
+
+def _lean_chain(op: _TChain, table: np.ndarray, one_row: int, base: tuple[float, float],
+                span: float) -> tuple | None:
+    """The chain step: static chunks in bit-reversed order and their renormalisation levels.
+
+    O(L m^2 f) once; None when the bounds cannot be kept within ``_LEAN_LIMIT``.
+
+    Links are split (bottom first) into chunks of ``c 2^k`` links (``c`` = 1; or 3, 5, 7 for
+    width 2 and 3 for width 4, whichever pads least and is safe), the last one padded with
+    identity links (leaf rows: the constant-one row ``one_row``; weight 1 on the diagonal for the
+    first leaf, 0 elsewhere, so the padded matrix is exactly I). ``k`` halving levels leave ``c`` matrices, multiplied into the
+    base vector by one einsum. Stored with the offset inside each group of ``2^k`` bit-reversed,
+    the adjacent pairs ``(2i, 2i + 1)`` of every level are the two contiguous halves.
+    ``table`` is the ``(n_leaves, S + 1)`` leaf table, ``base`` the log-bounds on the maximum of
+    the block below the chain; the chain's output is renormalised unless its bounds stay within
+    ``[-span, span]`` (they are the step's last two items).
+    """
+    w = op.w[..., 0]                               # (m, m, f, L): [mo, c, f, l]
+    m, f, n_links = w.shape[0], w.shape[2], w.shape[3]
+    lw = np.log(w)
+    s_r = float((lw.max(axis=0) - lw.min(axis=0)).max())     # down a column (mo varies)
+    s_c = float((lw.max(axis=1) - lw.min(axis=1)).max())     # along a row (c varies)
+    s = s_r + s_c
+    # each link's leaf set: its maximum over the leaves, for every state (zero: exactly zero)
+    top = table[op.leaf_rows].max(axis=0)          # (L, S + 1)
+    pos = np.where(top > 0, top, np.inf).min(axis=1)
+    if not np.isfinite(pos).any():
+        return None
+    pos = np.where(np.isfinite(pos), pos, 1.0)
+    w_col = w.sum(axis=1)                          # (m, f, L): sum over c
+    lo = float(np.log(w_col.min(axis=(0, 1)) * pos).min())   # min row sum of a link
+    hi = float(np.log(w_col.sum(axis=1).max(axis=0) * top.max(axis=1)).max())
+    log_m = float(np.log(m))
+    if not np.isfinite(hi):
+        hi = 0.0
+    per = m * m * max(m, f) * THIN_MAX_BATCH
+    size = 1 << max(1, (max(2, _CHUNK_ELEMENTS // per)).bit_length() - 1)
+    stacked = m > 2
+    chunks = []
+    for end in range(n_links, 0, -size):           # bottom chunk first
+        start = max(0, end - size)
+        n = end - start
+        shapes = [(1, (n - 1).bit_length())]       # (c, k): c 2^k >= n links
+        for odd in _LEAN_ODD[:len(_LEAN_ODD) if m <= 2 else 1 if m <= 4 else 0]:
+            if n >= odd:
+                shapes.append((odd, max(0, (-(-n // odd) - 1).bit_length())))
+        # least padding first; c = 1 last among equals (its final product is the safest)
+        shapes.sort(key=lambda ck: (ck[0] << ck[1], -ck[0]))
+        shapes.append((1, (n - 1).bit_length()))
+        for c, k in shapes:
+            sched = _chain_schedule(lo, hi, k, c, s_r, s, log_m, base if end == n_links
+                                    else (0.0, 0.0))
+            if sched is not None:
+                break
+        else:
+            return None
+        p = c << k
+        flags, v_lo, v_hi = sched
+        renorm_v = start > 0 or v_lo < -span or v_hi > span
+        if renorm_v:
+            v_lo = v_hi = 0.0
+        # stored position of logical link g 2^k + t: bitrev_k(t) c + g
+        logical = np.arange(p)
+        g, t = logical >> k, logical & ((1 << k) - 1)
+        rev = np.zeros(p, dtype=np.int64)
+        for b in range(k):
+            rev |= ((t >> b) & 1) << (k - 1 - b)
+        order = np.empty(p, dtype=np.int64)        # stored position -> logical link
+        order[rev * c + g] = logical
+        rows = np.full((f, p), one_row, dtype=np.int64)
+        rows[:, :n] = op.leaf_rows[:, start:end]
+        ws = np.zeros((f, m, m, p))
+        ws[0, :, :, n:] = np.eye(m)[:, :, None]
+        ws[:, :, :, :n] = w[:, :, :, start:end].transpose(2, 0, 1, 3)
+        rows, ws = rows[:, order], ws[..., order]
+        # the last c matrices times the vector: "ikb,klb,...,jb->ib" (stacked: "bik,...")
+        ix = "iklmnopq"[:c] + "j"
+        subs = ",".join((f"b{ix[i]}{ix[i + 1]}" if stacked else f"{ix[i]}{ix[i + 1]}b")
+                        for i in range(c)) + ",jb->ib"
+        if stacked:                                # gathers (P, f), weights (P, f, m m)
+            chunks.append((np.ascontiguousarray(rows.T),
+                           np.ascontiguousarray(ws.transpose(3, 0, 1, 2).reshape(p, f, m * m)),
+                           c, flags, subs, renorm_v))
+        else:                                      # gathers (f, P), weights (f, m, m, P)
+            chunks.append((np.ascontiguousarray(rows), np.ascontiguousarray(ws), c, flags,
+                           subs, renorm_v))
+    return (None, op.out, m, stacked, tuple(chunks), op.base_rows, v_lo, v_hi, None, None)
+
+
+def _lean_chain_run(vals: np.ndarray, step: tuple, batch: int, divisors: list) -> None:
+    """One chain step: chunk by chunk from the bottom, the tree of halves, then the final
+    einsum; appends each divisor to ``divisors``. O(L m^3 B) arithmetic, O(log L) calls."""
+    _, out, m, stacked, chunks, base_rows, _, _, base_fold, root_fold = step
+    einsum, maxr = np.einsum, np.maximum.reduce
+    if base_fold is None:
+        v = [vals.take(base_rows, axis=0)]                      # (m, B)
+        g = None
+    else:          # the base block's op: weights (m, q), leaf pairs; one gather with the links'
+        both = vals.take(base_fold[2], axis=0)
+        n_links = chunks[0][0].size
+        g = both[:n_links].reshape(chunks[0][0].shape + (batch,))
+        gb = both[n_links:].reshape(2, -1, batch)               # (2, q, B)
+        v = [base_fold[0], gb[0], gb[1]]
+    for rows, w, c, flags, subs, renorm_v in chunks:
+        if g is None:
+            g = vals.take(rows, axis=0)            # (P, f, B) stacked, else (f, P, B)
+        p = rows.shape[0] if stacked else rows.shape[1]
+        if stacked:                                # (P, B, m, m)
+            mats = np.matmul(g.transpose(0, 2, 1), w).reshape(p, batch, m, m)
+        else:                                      # (m, m, P, B)
+            mats = einsum("fmcp,fpb->mcpb", w, g)
+        level = 0
+        while True:
+            if flags[level]:
+                if stacked:
+                    mx = maxr(mats.reshape(p, batch, m * m), 2)   # (P, B)
+                    np.maximum(mx, _TINY, out=mx)
+                    mats /= mx[:, :, None, None]
+                else:
+                    mx = maxr(mats.reshape(m * m, p, batch), 0)
+                    np.maximum(mx, _TINY, out=mx)
+                    mats /= mx
+                divisors.append(mx)
+            if p == c:
+                break
+            p //= 2                                # left factors first half, right second
+            if stacked:
+                mats = np.matmul(mats[:p], mats[p:])
+            else:
+                mats = einsum("iklb,kjlb->ijlb", mats[:, :, :p], mats[:, :, p:])
+            level += 1
+        head: list = []
+        if root_fold is not None:          # the root op: weights (m,) on the chain's output
+            head, dest = [root_fold[0]], vals[root_fold[1]]
+        else:
+            dest = None if renorm_v else vals[out:out + m]
+        if stacked:
+            r = einsum(subs, *head, *mats, *v, out=dest)        # (m, B), or (B,): the root
+        else:
+            r = einsum(subs, *head, *mats.transpose(2, 0, 1, 3), *v, out=dest)
+        if renorm_v:
+            mx = maxr(r, 0)
+            np.maximum(mx, _TINY, out=mx)
+            r = np.divide(r, mx, out=vals[out:out + m])
+            divisors.append(mx[None])
+        v = [r]
+        g = None
+
+
+def _lean_root_log_values(tp: ThinPlan, vals: np.ndarray, batch: int) -> np.ndarray:
+    """Run the lean program on ``vals`` whose leaf rows are filled; root log-values ``(B,)``.
+
+    O(n_edges x batch) arithmetic in about 4 numpy calls per op (3 more where it renormalises)
+    and 2-3 per chain tree level.
+    """
+    divisors: list[np.ndarray] = []
+    add_reduce, max_reduce, multiply, matmul = np.add.reduce, np.maximum.reduce, np.multiply, \
+        np.matmul
+    multiply_reduce = np.multiply.reduce
+    for step in tp.lean.steps:
+        mm = step[0]
+        if mm is None:
+            _lean_chain_run(vals, step, batch, divisors)
+            continue
+        _, out, m, q, j_n, n_in, idx, w, renorm = step
+        slab = vals[out:out + m * j_n].reshape(m, j_n, batch)
+        jstep = j_n if m * q * j_n * batch <= _CHUNK_ELEMENTS else \
+            max(1, _CHUNK_ELEMENTS // (m * q * batch))
+        for j0 in range(0, j_n, jstep):
+            if jstep == j_n:
+                ix, wj, dest = idx, w, slab
+            else:
+                j1 = min(j_n, j0 + jstep)
+                dest = slab[:, j0:j1]
+                ix, wj = (idx[:, j0:j1], w[j0:j1]) if mm else (idx[..., j0:j1], w[:, :, j0:j1])
+            g = vals.take(ix, axis=0)              # (s, J, q, B) if mm else (s, q, J, B)
+            p = g[0] if n_in == 1 else multiply(g[0], g[1], out=g[0]) if n_in == 2 else \
+                multiply_reduce(g, 0)
+            if mm:
+                matmul(wj, p, out=dest.transpose(1, 0, 2))      # (J, m, q) @ (J, q, B)
+            else:
+                add_reduce(wj * p[:, None], 0, out=dest)        # sum_q (q, m, J, B)
+            if renorm:
+                mx = max_reduce(dest, 0)                        # (J, B)
+                np.maximum(mx, _TINY, out=mx)
+                np.divide(dest, mx, out=dest)
+                divisors.append(mx)
+    root = vals[tp.root_row]
+    if np.minimum.reduce(root) > 0:
+        out = np.log(root)
+    else:
+        with np.errstate(divide="ignore"):        # a zero root (zero block): -inf
+            out = np.log(root)
+    if divisors:
+        div = divisors[0] if len(divisors) == 1 else np.concatenate(divisors)
+        out += np.add.reduce(np.log(div), 0)
+    return out
+
 def root_log_values_from_states(rplan: RegionPlan, plan: Any, states: np.ndarray) -> np.ndarray:
     """Root log-values ``(batch,)`` from ``(n_variables, batch)`` int64 states (-1 = free).
 
@@ -797,10 +1372,10 @@ def root_log_values_from_states(rplan: RegionPlan, plan: Any, states: np.ndarray
     product); a thin batch (< ``THIN_MAX_BATCH`` columns) with states in range uses the
     stack-last linear-space engine; anything else the log-space region ops.
     """
-    from model_zoo.circuit.core import _leaf_rows
-
     batch = states.shape[1]
     if rplan.log_linear is not None:
+        from model_zoo.circuit.core import _leaf_rows
+
         ll: LogLinearPlan = rplan.log_linear
         leaf = _leaf_rows(plan, states, "sum")
         if ll.leaves is not None:
@@ -809,7 +1384,11 @@ def root_log_values_from_states(rplan: RegionPlan, plan: Any, states: np.ndarray
             return ll.const + ll.coef @ leaf
     tp: ThinPlan | None = rplan.thin
     if tp is not None and batch < THIN_MAX_BATCH and states.size:
-        lo, hi = states.min(), states.max()
-        if lo >= -1 and hi < tp.n_states:
+        # -1 <= state < n_states, in one reduction: state + 1 as unsigned wraps -2, -3, ... high
+        top = np.maximum.reduce((states.astype(np.int64, copy=False) + 1).view(np.uint64),
+                                axis=None)
+        if top <= tp.n_states:
             return thin_root_log_values(tp, plan.leaf_var, states)
+    from model_zoo.circuit.core import _leaf_rows
+
     return root_log_values(rplan, _leaf_rows(plan, states, "sum"))

@@ -112,3 +112,140 @@ def test_out_of_range_states_behave_as_on_the_layered_engine():
         forward(c, states, engine="layers")
     with pytest.raises(IndexError):
         forward(c, states)
+
+
+# -- the lean program of the thin engine (block tree, bound-driven renormalisation) ------------
+def _old_thin(c, states):
+    """The thin engine with its lean program switched off (per-op renormalisation, scales)."""
+    import dataclasses
+
+    tp = dataclasses.replace(_region_plan(c).thin, lean=None)
+    return regions.thin_root_log_values(tp, c._plan.leaf_var,
+                                        np.asarray(states, dtype=np.int64))
+
+
+def _with_tiny(c, tiny, seed):
+    """The same structure with one weight of every sum, and one entry of every leaf, set to
+    ``tiny`` (rows renormalised): bounds near the thin engine's safety limit."""
+    import dataclasses
+
+    from model_zoo.circuit.core import SUM
+
+    rng = np.random.default_rng(seed)
+    w = c.edge_weight.copy()
+    for node in np.flatnonzero(c.node_type == SUM):
+        lo, hi = c.child_ptr[node], c.child_ptr[node + 1]
+        w[lo + rng.integers(hi - lo)] = tiny
+        w[lo:hi] /= w[lo:hi].sum()
+    probs = c.leaf_probs.copy()
+    for node in np.flatnonzero(c.leaf_var >= 0):
+        probs[node, rng.integers(2)] = tiny
+        probs[node] /= probs[node].sum()
+    return dataclasses.replace(c, edge_weight=w, leaf_probs=probs, normalised=False, _cache={})
+
+
+@pytest.mark.parametrize("topology,n,k", [("balanced", 300, 2), ("balanced", 70, 3),
+                                          ("balanced", 40, 4), ("right_linear", 300, 2),
+                                          ("right_linear", 60, 3), ("right_linear", 30, 4),
+                                          ("right_linear", 12, 8)])
+@pytest.mark.parametrize("batch", [1, 5])
+def test_lean_program_matches_layers_and_the_old_thin_engine(topology, n, k, batch):
+    """Merged levels (K = 2), folded chain ends, odd-sized chain tails and skipped
+    renormalisations give the layered engine's values."""
+    c = vtree_circuit(n, k, topology=topology, seed=n + k)
+    lean = _region_plan(c).thin.lean
+    assert lean is not None
+    if topology == "balanced" and k == 2:          # some levels merged into four-set ops
+        assert any(st[0] is not None and st[5] == 4 for st in lean.steps)
+    rng = np.random.default_rng(batch)
+    states = rng.integers(-1, 2, size=(n, batch))
+    want = forward(c, states, engine="layers")
+    assert np.allclose(_thin(c, states), want, rtol=1e-12, atol=1e-9)
+    assert np.allclose(_old_thin(c, states), want, rtol=1e-12, atol=1e-9)
+
+
+@pytest.mark.parametrize("topology,n,k", [("balanced", 400, 2), ("balanced", 200, 3),
+                                          ("right_linear", 400, 2), ("right_linear", 150, 3)])
+def test_lean_program_near_the_safety_bound(topology, n, k):
+    """Weights and leaf probabilities of 1e-55 (just above the 1e-60 the thin engine accepts):
+    the bounds force frequent renormalisation and the root is far below exp(-745)."""
+    c = _with_tiny(vtree_circuit(n, k, topology=topology, seed=3), 1e-55, seed=n)
+    tp = _region_plan(c).thin
+    assert tp is not None and tp.lean is not None and tp.lean.n_renorm > 1
+    rng = np.random.default_rng(0)
+    states = rng.integers(0, 2, size=(n, 3))
+    states[: n // 3, 1] = -1
+    want = forward(c, states, engine="layers")
+    assert want.max() < -745
+    got = _thin(c, states)
+    assert np.all(np.isfinite(got)) and np.allclose(got, want, rtol=1e-12, atol=1e-9)
+
+
+def test_forced_renormalisation_everywhere_changes_nothing():
+    """Renormalising every op (the fallback used when a chain's base is too wide) is exact."""
+    import dataclasses
+
+    for topology, n in (("balanced", 100), ("right_linear", 100)):
+        c = vtree_circuit(n, 2, topology=topology, seed=1)
+        tp = _region_plan(c).thin
+        every = regions._lean_program(tp, frozenset(range(len(tp.ops))))
+        states = np.random.default_rng(2).integers(-1, 2, size=(n, 2))
+        got = regions.thin_root_log_values(dataclasses.replace(tp, lean=every),
+                                           c._plan.leaf_var, states)
+        assert np.allclose(got, forward(c, states, engine="layers"), rtol=1e-12, atol=1e-9)
+
+
+def test_zero_leaf_blocks_give_minus_infinity_in_the_lean_program():
+    """All K leaves of one variable zero for a state (in a chain link, the chain's base, or a
+    merged balanced level): the root is exactly zero, -inf, never nan; other columns keep their
+    values."""
+    import dataclasses
+
+    for topology, n in (("balanced", 64), ("right_linear", 64)):
+        c = vtree_circuit(n, 2, topology=topology, seed=4)
+        tp = _region_plan(c).thin
+        assert tp.lean is not None
+        s = tp.n_states
+        for var in (0, n // 2, n - 1):
+            table = tp.leaf_table.copy().reshape(tp.n_leaves, s + 1)
+            leaves = np.flatnonzero(c._plan.leaf_var == var)
+            table[leaves, 1 + 1] = 0.0                 # state 1 of `var` has probability 0
+            zeroed = dataclasses.replace(tp, leaf_table=table.reshape(-1))
+            states = np.random.default_rng(var).integers(-1, 2, size=(n, 3))
+            states[var] = [1, 0, -1]
+            got = regions.thin_root_log_values(zeroed, c._plan.leaf_var, states)
+            want = forward(c, states, engine="layers")
+            assert got[0] == -np.inf
+            assert np.allclose(got[1:], want[1:], atol=1e-9)   # state 0, marginalised
+
+
+def test_lean_program_with_small_chunks(monkeypatch):
+    """Chains split into several chunks, and ops evaluated in slices of blocks, when the chunk
+    size is small."""
+    monkeypatch.setattr(regions, "_CHUNK_ELEMENTS", 256)
+    for topology, n, k in (("right_linear", 90, 2), ("right_linear", 40, 3), ("balanced", 90, 2)):
+        c = vtree_circuit(n, k, topology=topology, seed=6)
+        tp = _region_plan(c).thin
+        assert tp.lean is not None
+        chains = [st for st in tp.lean.steps if st[0] is None]
+        if topology == "right_linear":
+            assert chains and len(chains[0][4]) > 1
+        states = np.random.default_rng(7).integers(-1, 2, size=(n, 4))
+        assert np.allclose(_thin(c, states), forward(c, states, engine="layers"),
+                           rtol=1e-12, atol=1e-9)
+
+
+@pytest.mark.parametrize("topology", ["balanced", "right_linear"])
+def test_out_of_range_states_on_the_lean_program(topology):
+    """-2 is marginalised and a state past the last raises, as on the layered pass."""
+    c = vtree_circuit(40, 2, topology=topology, seed=0)
+    assert _region_plan(c).thin.lean is not None
+    states = np.random.default_rng(0).integers(-1, 2, size=(40, 3))
+    states[5, 1] = -2
+    assert np.allclose(forward(c, states), forward(c, states, engine="layers"), atol=1e-9)
+    states[7, 2] = 2
+    with pytest.raises(IndexError):
+        forward(c, states, engine="layers")
+    with pytest.raises(IndexError):
+        forward(c, states)
+
