@@ -8,7 +8,7 @@ This is the one place where points become fitter input. The rules are:
 * a single ``wrong`` point voids the curve's measured verdicts: a fast wrong answer is not a
   result, so ``work`` and ``time`` are None and a flag says why;
 * by time, each point's fastest per-query seconds (:attr:`~profiler.records.Point.
-  seconds_fastest`, over its contiguous repeats and the curve's interleaved sweep) is fitted:
+  seconds_fastest`: its fastest repeat in the curve's interleaved sweep) is fitted:
   interference on a shared machine only adds time, in spells longer than a point, and the
   fastest of repeats spread over the whole curve is the steadiest cost of the work itself.
   No repeats are passed (a bootstrap of a minimum is not consistent), so intervals come from

@@ -360,7 +360,7 @@ class StudyContext:
     reference_s: float | None = None
     grace_s: float = 0.3
     measure_memory: bool = True
-    interleave_rounds: int = 7
+    interleave_rounds: int = 9
     interleave_repeat_s: float = 0.25
     interleave_share: float = 0.35
     python: str = field(default_factory=lambda: sys.executable)

@@ -560,9 +560,9 @@ def summary_markdown(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> 
         lines += ["", "Work units: " + "; ".join(f"{_md(f)}: {_md(u)}" for f, u in units) + "."]
     factors = sorted(a.typical_factor for a in analyses if a.typical_factor is not None)
     if factors:
-        lines += ["", "By time, each point is its fastest per-query repeat, over its own "
-                  "repeats and an interleaved sweep of the curve's sizes in random order "
-                  "(interference only adds time); a typical (median) repeat was "
+        lines += ["", "By time, each point is its fastest per-query repeat in an interleaved "
+                  "sweep over the curve's sizes in random order (interference only adds "
+                  "time); a typical (median) repeat was "
                   f"{factors[len(factors) // 2]:.2f}x the fastest on this machine (range "
                   f"{factors[0]:.2f}-{factors[-1]:.2f}x over curves)."]
     notes = [a for a in analyses if a.agreement == "disagrees"]

@@ -96,7 +96,7 @@ def test_too_few_points_give_no_verdict_and_a_reason():
 def test_time_fit_takes_each_points_fastest_repeat(monkeypatch):
     """The time fit gets each point's fastest per-query seconds and no repeats (a bootstrap of
     a minimum is not consistent); a slow spell over one point's contiguous repeats is undone
-    by a faster interleaved repeat."""
+    by its interleaved repeats, which alone count once the point has any."""
     from dataclasses import replace
 
     seen = []
