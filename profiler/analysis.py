@@ -7,13 +7,18 @@ This is the one place where points become fitter input. The rules are:
   likelihood); ``error`` points are left out and flagged;
 * a single ``wrong`` point voids the curve's measured verdicts: a fast wrong answer is not a
   result, so ``work`` and ``time`` are None and a flag says why;
-* by time, each point's fastest per-query seconds (:attr:`~profiler.records.Point.
-  seconds_fastest`: its fastest repeat in the curve's interleaved sweep) is fitted:
-  interference on a shared machine only adds time, in spells longer than a point, and the
-  fastest of repeats spread over the whole curve is the steadiest cost of the work itself.
-  No repeats are passed (a bootstrap of a minimum is not consistent), so intervals come from
-  the profile likelihood. :attr:`CurveAnalysis.typical_factor` (median over points of
-  median / fastest) says how much slower a typical repeat was, for planners;
+* by time, each point's cost is one statistic of its repeats in the curve's interleaved sweep
+  (its contiguous repeats when it had none), the same statistic for every point of a curve:
+  the fastest, the lower quartile or the median, whichever varies least between random
+  halves of each point's repeats (:func:`time_statistic`; chosen without looking at any
+  growth fit).
+  Interference on a shared machine only adds time; on a quiet machine the fastest repeat sits
+  on a sharp floor and is the steadiest, on a busy one the slow spells are dense and a middle
+  quantile is. Every size's sweep repeats share the same spells, so any fixed quantile scales
+  all sizes alike. No repeats are passed to the fitter (the statistic already summarises
+  them), so intervals come from the profile likelihood. :attr:`CurveAnalysis.typical_factor`
+  (median over points of the contiguous median / the fitted cost) says how much slower a
+  typical repeat was, for planners;
   by work, the mean work per query is used (work is deterministic);
 * a decided time verdict whose class differs from a decided work verdict is downgraded to
   ``inconclusive`` (leaning its own way): over a limited range, fixed overheads and the memory
@@ -25,7 +30,8 @@ This is the one place where points become fitter input. The rules are:
   sizes (censored points included: a formula needs no run), and the theory-vs-measurement
   agreement comes from :func:`profiler.audit.compare_with_theory`.
 
-It imports only the fitter, the audit comparison and the records; no model is ever built here.
+It imports only the fitter, the audit comparison, the records and the seeded random generator
+of `model_zoo.base`; no model is ever built here.
 """
 
 from __future__ import annotations
@@ -38,6 +44,7 @@ from profiler.errors import FitError
 from profiler.records import CurveResult, Point, StudyResult
 
 __all__ = ["CurveAnalysis", "analyse_curve", "analyse_study", "MIN_POINTS", "fit_series",
+           "time_statistic", "time_cost", "TIME_STATISTICS",
            "CAUTION", "competing_laws", "format_growth", "format_law", "format_confidence",
            "format_range"]
 
@@ -72,9 +79,11 @@ class CurveAnalysis:
     flags
         Plain phrases about the points: censored counts, wrong answers, errors, budget cuts.
     typical_factor
-        Median over the ``ok`` points of ``seconds_median / seconds_fastest`` (>= 1): how much
-        slower a typical repeat ran than the fastest one the time verdict is fitted on. None
-        without timed points.
+        Median over the ``ok`` points of ``seconds_median`` over the cost the time verdict was
+        fitted on: how much slower a typical contiguous repeat ran. None without timed points.
+    time_statistic
+        Which statistic of each point's repeats the time verdict was fitted on:
+        ``"fastest"``, ``"lower quartile"`` or ``"median"`` (:func:`time_statistic`).
     """
 
     curve: CurveResult
@@ -86,6 +95,7 @@ class CurveAnalysis:
     agreement_note: str
     flags: tuple[str, ...]
     typical_factor: float | None = None
+    time_statistic: str = "fastest"
 
     @property
     def key(self) -> str:
@@ -150,27 +160,94 @@ def _work_series(points: Iterable[Point]):
     return sizes, costs, cens, n_dropped
 
 
-def _time_series(points: Iterable[Point]):
+#: Candidate statistics of a point's repeats for the time fit, in order of preference on ties.
+TIME_STATISTICS = ("fastest", "lower quartile", "median")
+_QUANTILE = {"fastest": 0.0, "lower quartile": 0.25, "median": 0.5}
+#: A point's sweep repeats are used when it has at least this many.
+_MIN_SWEEP = 3
+
+
+def _repeats_of(p: Point) -> tuple[float, ...]:
+    """The repeats a point's time cost is taken from: its sweep's, else its contiguous ones."""
+    pool = p.interleaved_seconds if len(p.interleaved_seconds) >= _MIN_SWEEP else \
+        p.repeat_seconds
+    return tuple(float(r) for r in pool if _finite_positive(r))
+
+
+def _statistic(values: Sequence[float], name: str) -> float:
+    import numpy as np
+
+    return float(np.quantile(np.asarray(values, dtype=float), _QUANTILE[name]))
+
+
+def time_statistic(points: Iterable[Point], *, seed: int = 0, n_splits: int = 64) -> str:
+    """The statistic of each point's repeats that is steadiest between halves of them.
+
+    For every candidate (:data:`TIME_STATISTICS`) and every ``ok`` point with at least six
+    repeats: ``n_splits`` random splits of the point's repeats into two halves, and the mean of
+    (ln stat(half 1) - ln stat(half 2))^2 / 2, an estimate of the statistic's variance at half
+    the repeats; the candidate with the smallest sum over points wins. Subsampling without
+    replacement, unlike the bootstrap, stays valid for an extreme such as the fastest
+    (Politis, Romano & Wolf 1999). The choice reads only each point's repeats, never the sizes
+    or a fitted law, so it cannot favour a growth class. Without enough repeats: ``"fastest"``.
+
+    Notes
+    -----
+    O(points * n_splits * repeats log repeats).
+    """
+    import numpy as np
+
+    from model_zoo.base import make_rng
+
+    samples = [np.log(np.asarray(r)) for r in (_repeats_of(p) for p in points
+                                               if p.status == "ok") if len(r) >= 6]
+    if not samples:
+        return "fastest"
+    rng = make_rng(seed, 0x5EED)
+    score = {name: 0.0 for name in TIME_STATISTICS}
+    for s in samples:
+        half = s.size // 2
+        order = np.argsort(rng.random((n_splits, s.size)), axis=1)
+        a, b = s[order[:, :half]], s[order[:, half:2 * half]]
+        for name in TIME_STATISTICS:
+            q = _QUANTILE[name]
+            d = np.quantile(a, q, axis=1) - np.quantile(b, q, axis=1)
+            score[name] += 0.5 * float(np.mean(d * d))
+    return min(TIME_STATISTICS, key=lambda name: score[name])
+
+
+def time_cost(p: Point, statistic: str) -> float | None:
+    """Seconds per query of one point as the time fit takes it (a lower bound if censored)."""
+    if p.is_censored:
+        return p.seconds_median if _finite_positive(p.seconds_median) else None
+    if p.status != "ok":
+        return None
+    pool = _repeats_of(p)
+    if pool:
+        return _statistic(pool, statistic)
+    return p.seconds_median if _finite_positive(p.seconds_median) else None
+
+
+def _time_series(points: Iterable[Point], statistic: str):
     sizes, costs, cens = [], [], []
     for p in points:
-        fastest = p.seconds_fastest
-        if not _finite_positive(fastest):
+        cost = time_cost(p, statistic)
+        if not _finite_positive(cost):
             continue
-        # For a censored point seconds_fastest is the cap per query: a lower bound.
-        sizes.append(p.size); costs.append(float(fastest)); cens.append(p.is_censored)
+        sizes.append(p.size); costs.append(float(cost)); cens.append(p.is_censored)
     return sizes, costs, cens
 
 
 _DECIDED = ("polynomial", "exponential")
 
 
-def _check_against_work(time, work, points: Sequence[Point]):
+def _check_against_work(time, work, points: Sequence[Point], statistic: str):
     """The time verdict, downgraded to inconclusive when its class contradicts the work's."""
     if (time is None or work is None or time.growth not in _DECIDED
             or work.growth not in _DECIDED or time.growth == work.growth):
         return time
-    per_unit = [float(p.seconds_fastest) / float(p.work) for p in points
-                if p.status == "ok" and _finite_positive(p.seconds_fastest)
+    per_unit = [float(c) / float(p.work) for p in points
+                if p.status == "ok" and _finite_positive(c := time_cost(p, statistic))
                 and _finite_positive(p.work)]
     spread = (f"; seconds per unit of work range over {max(per_unit) / min(per_unit):.1f}x "
               "across the sizes" if per_unit else "")
@@ -182,10 +259,10 @@ def _check_against_work(time, work, points: Sequence[Point]):
                    reasons=tuple(time.reasons) + (reason,))
 
 
-def _typical_factor(points: Iterable[Point]) -> float | None:
-    ratios = sorted(float(p.seconds_median) / float(p.seconds_fastest) for p in points
+def _typical_factor(points: Iterable[Point], statistic: str) -> float | None:
+    ratios = sorted(float(p.seconds_median) / float(c) for p in points
                     if p.status == "ok" and _finite_positive(p.seconds_median)
-                    and _finite_positive(p.seconds_fastest))
+                    and _finite_positive(c := time_cost(p, statistic)))
     if not ratios:
         return None
     mid = len(ratios) // 2
@@ -255,6 +332,7 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
         flags.append("cut short by budget")
 
     work = time = None
+    statistic = time_statistic(points, seed=seed)
     if not n_wrong:
         sizes, costs, cens, n_dropped = _work_series(points)
         work, why = fit_series(sizes, costs, cens, seed=seed)
@@ -263,11 +341,11 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
                          "left out of the work fit")
         if why:
             flags.append(f"work: {why}")
-        sizes, costs, cens = _time_series(points)
+        sizes, costs, cens = _time_series(points, statistic)
         time, why = fit_series(sizes, costs, cens, seed=seed)
         if why:
             flags.append(f"time: {why}")
-        time = _check_against_work(time, work, points)
+        time = _check_against_work(time, work, points, statistic)
     sizes, costs, cens = _predicted_series(points)
     predicted, _ = fit_series(sizes, costs, cens, seed=seed)
 
@@ -275,7 +353,8 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
     agreement, note = compare_with_theory(measured, predicted, curve.theory)
     return CurveAnalysis(curve=curve, work=work, time=time, predicted=predicted,
                          theory=curve.theory, agreement=agreement, agreement_note=note,
-                         flags=tuple(flags), typical_factor=_typical_factor(points))
+                         flags=tuple(flags), typical_factor=_typical_factor(points, statistic),
+                         time_statistic=statistic)
 
 
 #: The last few studies analysed. Records are frozen and the fits seeded, so a study with the

@@ -427,11 +427,13 @@ def _estimate(curves: _Curves, family: str, w: Workload) -> Estimate:
     seconds, work, peak = at("time"), at("work"), at("memory")
     factor = primary.typical_factor
     if seconds is not None and factor is not None and factor > 1.0:
-        # The time law is fitted on the fastest repeats; a planner pays for typical ones.
+        # The time law is fitted on a low statistic of the sweep's repeats; a planner pays
+        # for typical ones.
         seconds = Interval(seconds.median * factor, seconds.lower, seconds.upper * factor)
-        notes.append(f"{key}: time is fitted on the fastest repeats; the central value and upper "
-                     f"bound are scaled by {factor:.2f}, the median/fastest ratio of its repeats "
-                     "on the machine that measured it (the lower bound stays at the fastest)")
+        notes.append(f"{key}: time is fitted on the {primary.time_statistic} of each point's "
+                     f"sweep repeats; the central value and upper bound are scaled by "
+                     f"{factor:.2f}, the ratio of a typical contiguous repeat to it on the "
+                     "machine that measured it (the lower bound is left as fitted)")
     for a, axis, target in ((primary, p_axis, p_target),
                             (other if ratio_needed else None, o_axis, o_target)):
         if a is None or target is None:

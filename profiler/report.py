@@ -57,7 +57,8 @@ from pathlib import Path
 from typing import Any, Iterable, Sequence
 
 from profiler.analysis import (CAUTION, CurveAnalysis, analyse_study, competing_laws,
-                               format_confidence, format_growth, format_law, format_range)
+                               format_confidence, format_growth, format_law, format_range,
+                               time_cost)
 from profiler.errors import InputError
 from profiler.records import CurveResult, StudyResult, curve_label
 from profiler import report_style as style
@@ -188,8 +189,8 @@ def results_json(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> dict
             "mechanism_knob": c.mechanism_knob, "work_unit": c.work_unit, "theory": c.theory,
             "cut_by_budget": c.cut_by_budget, "agreement": a.agreement,
             "agreement_note": a.agreement_note, "flags": list(a.flags),
-            "typical_over_fastest": a.typical_factor,
-            "points": [{**p.to_dict(), "seconds_fastest": p.seconds_fastest}
+            "time_statistic": a.time_statistic, "typical_over_fitted": a.typical_factor,
+            "points": [{**p.to_dict(), "seconds_fitted": time_cost(p, a.time_statistic)}
                        for p in sorted(c.points, key=lambda p: p.size)],
             "verdict": {"work": _verdict_dict(a.work, s.key()),
                         "time": _verdict_dict(a.time, s.key()),
@@ -213,13 +214,16 @@ def results_json(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> dict
 
 # -- points.csv / parquet ---------------------------------------------------------------------
 
-def _point_rows(result: StudyResult) -> tuple[list[str], list[dict[str, Any]]]:
+def _point_rows(result: StudyResult, statistics: dict[int, str] | None = None
+                ) -> tuple[list[str], list[dict[str, Any]]]:
     """Columns and rows of points.csv: the store's export, contract columns first.
 
     The values come from :func:`profiler.store.points_csv_rows` (``study`` is the study's name,
     ``profile_<name>`` one column per structural-profile entry), so points.csv and
     :func:`profiler.store.load_points` agree; ``repeat_seconds`` and ``interleaved_seconds``
-    are added, ``;``-separated.
+    are added, ``;``-separated, and with ``statistics`` (curve index -> the analysis's
+    ``time_statistic``) ``time_statistic`` and ``seconds_fitted``, the per-query seconds the
+    time verdict was fitted on (:func:`profiler.analysis.time_cost`).
     """
     from profiler.store import points_csv_rows
 
@@ -231,15 +235,21 @@ def _point_rows(result: StudyResult) -> tuple[list[str], list[dict[str, Any]]]:
                 seen.append(k)
     columns = list(POINT_COLUMNS) + [k for k in seen if k not in POINT_COLUMNS]
     columns += ["repeat_seconds", "interleaved_seconds"]
+    if statistics is not None:
+        columns += ["time_statistic", "seconds_fitted"]
     points = [p for c in result.curves for p in c.points]   # the export's own order
     for row, p in zip(rows, points):
         row["repeat_seconds"] = ";".join(f"{r:.9g}" for r in p.repeat_seconds)
         row["interleaved_seconds"] = ";".join(f"{r:.9g}" for r in p.interleaved_seconds)
+        if statistics is not None and p.curve in statistics:
+            row["time_statistic"] = statistics[p.curve]
+            row["seconds_fitted"] = time_cost(p, statistics[p.curve])
     return columns, rows
 
 
-def _write_points(result: StudyResult, out: Path) -> dict[str, Path]:
-    columns, rows = _point_rows(result)
+def _write_points(result: StudyResult, out: Path,
+                  statistics: dict[int, str] | None = None) -> dict[str, Path]:
+    columns, rows = _point_rows(result, statistics)
     paths = {"points.csv": out / "points.csv"}
     with open(paths["points.csv"], "w", newline="", encoding="utf-8") as fh:
         writer = csv.DictWriter(fh, fieldnames=columns, extrasaction="ignore")
@@ -278,16 +288,20 @@ def _work_label(unit: str, method: str = "") -> str:
     return f"work per query ({_short_unit(unit, method)})"
 
 
-def _series(curve: CurveResult, kind: str):
-    """Measured marks for one cost kind: (ok, censored, wrong) lists of tuples."""
+def _series(curve: CurveResult, kind: str, statistic: str = "fastest"):
+    """Measured marks for one cost kind: (ok, censored, wrong) lists of tuples (by time, the
+    curve's fitted ``statistic`` of each point's repeats)."""
     ok, cens, wrong = [], [], []
     for p in sorted(curve.points, key=lambda p: p.size):
         if kind == "work":
             v = p.work
             lo = hi = v
         else:
-            # The fitted statistic, with a bar up to the typical (median) repeat.
-            v, lo, hi = p.seconds_fastest, p.seconds_fastest, p.seconds_median
+            # The fitted statistic, with a bar from the fastest repeat to the typical one.
+            v = time_cost(p, statistic)
+            lo, hi = p.seconds_fastest, p.seconds_median
+            if v is not None and lo is not None and hi is not None:
+                lo, hi = min(lo, v), max(hi, v)
         if v is None or not math.isfinite(v) or v <= 0:
             continue
         lo = v if lo is None or not math.isfinite(lo) or lo <= 0 else lo
@@ -341,12 +355,13 @@ def _wrap(text: str, width: int = 72) -> str:
     return "\n".join(textwrap.wrap(text, width)) or text
 
 
-def _draw_cost_panel(ax, rax, curve: CurveResult, verdict, kind: str) -> None:
+def _draw_cost_panel(ax, rax, curve: CurveResult, verdict, kind: str,
+                     statistic: str = "fastest") -> None:
     import numpy as np
 
     from profiler.fitter import predict
 
-    ok, cens, wrong = _series(curve, kind)
+    ok, cens, wrong = _series(curve, kind, statistic)
     ink = style.PALETTE["black"]
     if ok:
         xs = np.array([o[0] for o in ok], float)
@@ -355,7 +370,8 @@ def _draw_cost_panel(ax, rax, curve: CurveResult, verdict, kind: str) -> None:
         hi = np.array([o[3] for o in ok], float)
         ax.errorbar(xs, ys, yerr=[np.maximum(ys - lo, 0), np.maximum(hi - ys, 0)], fmt="o",
                     color=ink, ms=5, capsize=3, lw=1, zorder=5,
-                    label="measured (fastest, bar to median)" if kind == "time" else "measured")
+                    label=(f"measured ({statistic} sweep repeat; bar: fastest to median)"
+                           if kind == "time" else "measured"))
     if cens:
         cx = [c[0] for c in cens]
         cy = [c[1] for c in cens]
@@ -430,7 +446,7 @@ def _curve_figure(a: CurveAnalysis, path: Path) -> None:
         ax = fig.add_subplot(grid[0, col])
         rax = fig.add_subplot(grid[1, col], sharex=ax)
         plt.setp(ax.get_xticklabels(), visible=False)
-        _draw_cost_panel(ax, rax, a.curve, verdict, kind)
+        _draw_cost_panel(ax, rax, a.curve, verdict, kind, a.time_statistic)
     fig.suptitle(curve_label(a.curve.spec), fontsize=11, x=0.01, y=0.98, ha="left",
                  fontweight="bold")
     fig.savefig(path, facecolor="white")
@@ -455,7 +471,7 @@ def _comparison_figure(level: str, axis: str, group: Sequence[CurveAnalysis],
     for ax, kind in zip(axes, ("work", "time")):
         for a in group:
             s = a.curve.spec
-            ok, cens, _ = _series(a.curve, kind)
+            ok, cens, _ = _series(a.curve, kind, a.time_statistic)
             colour = style.family_colour(families.index(s.family))
             marker = style.MARKERS[topologies.index(s.topology) % len(style.MARKERS)]
             ls = style.LINESTYLES.get(s.method, ":")
@@ -560,10 +576,13 @@ def summary_markdown(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> 
         lines += ["", "Work units: " + "; ".join(f"{_md(f)}: {_md(u)}" for f, u in units) + "."]
     factors = sorted(a.typical_factor for a in analyses if a.typical_factor is not None)
     if factors:
-        lines += ["", "By time, each point is its fastest per-query repeat in an interleaved "
-                  "sweep over the curve's sizes in random order (interference only adds "
-                  "time); a typical (median) repeat was "
-                  f"{factors[len(factors) // 2]:.2f}x the fastest on this machine (range "
+        chosen = sorted({a.time_statistic for a in analyses})
+        lines += ["", "By time, each point is one statistic of its repeats in an interleaved "
+                  "sweep over the curve's sizes in random order — per curve the fastest, the "
+                  "lower quartile or the median, whichever varies least under resampling "
+                  f"(here: {', '.join(chosen)}; `time_statistic` in results.json and "
+                  "points.csv). A typical contiguous repeat was "
+                  f"{factors[len(factors) // 2]:.2f}x the fitted cost on this machine (range "
                   f"{factors[0]:.2f}-{factors[-1]:.2f}x over curves)."]
     notes = [a for a in analyses if a.agreement == "disagrees"]
     if notes:
@@ -717,7 +736,8 @@ def render_html(result: StudyResult, analyses: Sequence[CurveAnalysis],
         if name.startswith("figures/compare_"):
             comps.append(f"<figure class=\"compare\">{_img(path, 'comparison ' + name)}"
                          f"<figcaption>{_e(name)}: every family's measured points (by time, "
-                         "each point's fastest repeat) on one axis. Work units differ between "
+                         "the statistic each curve was fitted on) on one axis. Work units "
+                         "differ between "
                          "families (see the verdict table); "
                          "compare slopes, not heights.</figcaption></figure>")
     sections.append("<section id=\"compare\"><h2>Comparisons</h2>" + "".join(comps) +
@@ -792,7 +812,8 @@ def write_report(result: StudyResult, out_dir: str | Path, *,
     analyses = list(analyses)
     paths: dict[str, Path] = {}
     paths.update(_write_figures(analyses, out))
-    paths.update(_write_points(result, out))
+    paths.update(_write_points(result, out, {a.curve.index: a.time_statistic
+                                             for a in analyses}))
     doc = results_json(result, analyses)
     paths["results.json"] = out / "results.json"
     paths["results.json"].write_text(json.dumps(doc, indent=2, sort_keys=False) + "\n",

@@ -32,10 +32,10 @@ def test_points_csv_marks_censored_points(measured):
     assert "censored" in header and "curve_key" in header
 
 
-@pytest.mark.parametrize("cost,kind", [("work", "work"), ("seconds_fastest", "time")])
+@pytest.mark.parametrize("cost,kind", [("work", "work"), ("seconds_fitted", "time")])
 def test_fit_on_points_csv_reproduces_the_run_verdicts(measured, cost, kind):
     """Same growth class and degree from the CLI's CSV path as from the study's own analysis
-    (time verdicts are fitted on ``seconds_fastest``, the column points.csv carries for it)."""
+    (time verdicts are fitted on ``seconds_fitted``, the column points.csv carries for it)."""
     result, csv_path = measured
     from_csv = {v["curve"]: v for v in fit_csv(csv_path, cost=cost, curve="curve_key")}
     for analysis in analyse_study(result):
@@ -48,15 +48,20 @@ def test_fit_on_points_csv_reproduces_the_run_verdicts(measured, cost, kind):
 
 
 def test_points_carry_their_interleaved_repeats_into_points_csv(measured):
-    """Every ok point got the interleaved sweep's repeats, and seconds_fastest is the least of
-    them."""
+    """Every ok point got the interleaved sweep's repeats; seconds_fitted is the curve's
+    time_statistic of them (seconds_fastest their least)."""
     import csv
+
+    import numpy as np
 
     result, csv_path = measured
     rows = list(csv.DictReader(open(csv_path)))
     assert rows and all(r["interleaved_seconds"] for r in rows if r["status"] == "ok")
+    q = {"fastest": 0.0, "lower quartile": 0.25, "median": 0.5}
     for r in rows:
         if r["status"] != "ok":
             continue
         seen = [float(x) for x in r["interleaved_seconds"].split(";")]
         assert float(r["seconds_fastest"]) == pytest.approx(min(seen), rel=1e-6)
+        assert float(r["seconds_fitted"]) == pytest.approx(
+            float(np.quantile(seen, q[r["time_statistic"]])), rel=1e-6)
