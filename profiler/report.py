@@ -505,22 +505,64 @@ def _comparison_figure(level: str, axis: str, group: Sequence[CurveAnalysis],
     plt.close(fig)
 
 
+#: Figures are drawn in this many forked processes when there are at least ``_PARALLEL_MIN``
+#: (matplotlib's drawing is pure CPU, ~0.5 s a figure; a default study has ~30).
+_FIGURE_PROCESSES = 2
+_PARALLEL_MIN = 8
+
+
+def _draw_job(job: tuple) -> None:
+    kind, args, path = job
+    if kind == "curve":
+        _curve_figure(args[0], path)
+    else:
+        _comparison_figure(*args, path)
+
+
 def _write_figures(analyses: Sequence[CurveAnalysis], out: Path) -> dict[str, Path]:
+    """Every curve's figure and one comparison per (level, axis); independent files, drawn in
+    parallel where forking is available (same pixels either way)."""
     fig_dir = out / "figures"
     fig_dir.mkdir(parents=True, exist_ok=True)
     paths: dict[str, Path] = {}
+    jobs: list[tuple] = []
     for a in analyses:
         name = f"curve_{a.curve.index:02d}.png"
-        _curve_figure(a, fig_dir / name)
+        jobs.append(("curve", (a,), fig_dir / name))
         paths[f"figures/{name}"] = fig_dir / name
     groups: dict[tuple[str, str], list[CurveAnalysis]] = defaultdict(list)
     for a in analyses:
         groups[(a.curve.spec.level, a.curve.spec.axis)].append(a)
     for (level, axis), group in sorted(groups.items()):
         name = f"compare_{_slug(level)}_{_slug(axis)}.png"
-        _comparison_figure(level, axis, group, fig_dir / name)
+        jobs.append(("compare", (level, axis, group), fig_dir / name))
         paths[f"figures/{name}"] = fig_dir / name
+    if not _draw_in_parallel(jobs):
+        for job in jobs:
+            _draw_job(job)
     return paths
+
+
+def _draw_in_parallel(jobs: list[tuple]) -> bool:
+    """Draw ``jobs`` in forked processes; False (nothing promised drawn) where that is not
+    possible, and the caller draws them here."""
+    import multiprocessing as mp
+    import os
+
+    if len(jobs) < _PARALLEL_MIN or (os.cpu_count() or 1) < 2 \
+            or "fork" not in mp.get_all_start_methods():
+        return False
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot  # noqa: F401  (imported once here, inherited by the children)
+
+    try:
+        with mp.get_context("fork").Pool(_FIGURE_PROCESSES) as pool:
+            pool.map(_draw_job, jobs, chunksize=1)
+    except Exception:
+        return False
+    return True
 
 
 # -- Markdown ---------------------------------------------------------------------------------
@@ -579,7 +621,8 @@ def summary_markdown(result: StudyResult, analyses: Sequence[CurveAnalysis]) -> 
         chosen = sorted({a.time_statistic for a in analyses})
         lines += ["", "By time, each point is one statistic of its repeats in an interleaved "
                   "sweep over the curve's sizes in random order — per curve the fastest, the "
-                  "lower quartile or the median, whichever varies least under resampling "
+                  "lower quartile or the median, whichever differs least between random halves of "
+                  "the repeats "
                   f"(here: {', '.join(chosen)}; `time_statistic` in results.json and "
                   "points.csv). A typical contiguous repeat was "
                   f"{factors[len(factors) // 2]:.2f}x the fitted cost on this machine (range "
