@@ -37,6 +37,7 @@ of `model_zoo.base`; no model is ever built here.
 from __future__ import annotations
 
 import math
+import statistics
 from dataclasses import dataclass, replace
 from typing import Iterable, Sequence
 
@@ -228,27 +229,24 @@ def time_cost(p: Point, statistic: str) -> float | None:
     return p.seconds_median if _finite_positive(p.seconds_median) else None
 
 
-def _time_series(points: Iterable[Point], statistic: str):
-    sizes, costs, cens = [], [], []
-    for p in points:
-        cost = time_cost(p, statistic)
-        if not _finite_positive(cost):
-            continue
-        sizes.append(p.size); costs.append(float(cost)); cens.append(p.is_censored)
-    return sizes, costs, cens
+def _time_series(points: Sequence[Point], costs: Sequence[float | None]):
+    sizes, out, cens = [], [], []
+    for p, cost in zip(points, costs):
+        if _finite_positive(cost):
+            sizes.append(p.size); out.append(float(cost)); cens.append(p.is_censored)
+    return sizes, out, cens
 
 
 _DECIDED = ("polynomial", "exponential")
 
 
-def _check_against_work(time, work, points: Sequence[Point], statistic: str):
+def _check_against_work(time, work, points: Sequence[Point], costs: Sequence[float | None]):
     """The time verdict, downgraded to inconclusive when its class contradicts the work's."""
     if (time is None or work is None or time.growth not in _DECIDED
             or work.growth not in _DECIDED or time.growth == work.growth):
         return time
-    per_unit = [float(c) / float(p.work) for p in points
-                if p.status == "ok" and _finite_positive(c := time_cost(p, statistic))
-                and _finite_positive(p.work)]
+    per_unit = [float(c) / float(p.work) for p, c in zip(points, costs)
+                if p.status == "ok" and _finite_positive(c) and _finite_positive(p.work)]
     spread = (f"; seconds per unit of work range over {max(per_unit) / min(per_unit):.1f}x "
               "across the sizes" if per_unit else "")
     reason = (f"time says {time.growth} but work says {work.growth}: over a limited range fixed "
@@ -259,14 +257,11 @@ def _check_against_work(time, work, points: Sequence[Point], statistic: str):
                    reasons=tuple(time.reasons) + (reason,))
 
 
-def _typical_factor(points: Iterable[Point], statistic: str) -> float | None:
-    ratios = sorted(float(p.seconds_median) / float(c) for p in points
-                    if p.status == "ok" and _finite_positive(p.seconds_median)
-                    and _finite_positive(c := time_cost(p, statistic)))
-    if not ratios:
-        return None
-    mid = len(ratios) // 2
-    return ratios[mid] if len(ratios) % 2 else 0.5 * (ratios[mid - 1] + ratios[mid])
+def _typical_factor(points: Sequence[Point], costs: Sequence[float | None]) -> float | None:
+    ratios = [float(p.seconds_median) / float(c) for p, c in zip(points, costs)
+              if p.status == "ok" and _finite_positive(p.seconds_median)
+              and _finite_positive(c)]
+    return statistics.median(ratios) if ratios else None
 
 
 def _predicted_series(points: Iterable[Point]):
@@ -333,6 +328,7 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
 
     work = time = None
     statistic = time_statistic(points, seed=seed)
+    time_costs = [time_cost(p, statistic) for p in points]
     if not n_wrong:
         sizes, costs, cens, n_dropped = _work_series(points)
         work, why = fit_series(sizes, costs, cens, seed=seed)
@@ -341,11 +337,11 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
                          "left out of the work fit")
         if why:
             flags.append(f"work: {why}")
-        sizes, costs, cens = _time_series(points, statistic)
+        sizes, costs, cens = _time_series(points, time_costs)
         time, why = fit_series(sizes, costs, cens, seed=seed)
         if why:
             flags.append(f"time: {why}")
-        time = _check_against_work(time, work, points, statistic)
+        time = _check_against_work(time, work, points, time_costs)
     sizes, costs, cens = _predicted_series(points)
     predicted, _ = fit_series(sizes, costs, cens, seed=seed)
 
@@ -353,7 +349,7 @@ def analyse_curve(curve: CurveResult, *, seed: int = 0) -> CurveAnalysis:
     agreement, note = compare_with_theory(measured, predicted, curve.theory)
     return CurveAnalysis(curve=curve, work=work, time=time, predicted=predicted,
                          theory=curve.theory, agreement=agreement, agreement_note=note,
-                         flags=tuple(flags), typical_factor=_typical_factor(points, statistic),
+                         flags=tuple(flags), typical_factor=_typical_factor(points, time_costs),
                          time_statistic=statistic)
 
 

@@ -1189,11 +1189,9 @@ class _CurveDriver:
         chosen: list[tuple[Point, float]] = []
         held = 0
         for p in sorted(points, key=lambda q: q.size):
-            if p.status != "ok" or not p.loops or not p.n_queries or not p.seconds_median:
-                continue
-            repeat_s = float(p.seconds_median) * p.loops * p.n_queries
+            repeat_s = _sweep_repeat_seconds(ctx, p)
             peak = int(p.peak_bytes or 0)
-            if repeat_s > ctx.interleave_repeat_s or held + peak > cap_bytes // 2:
+            if repeat_s is None or held + peak > cap_bytes // 2:
                 continue
             held += peak
             chosen.append((p, repeat_s))
@@ -1427,17 +1425,21 @@ def run_curve(study_ctx: StudyContext, curve_index: int, spec: CurveSpec,
                         seconds=time.monotonic() - t_start, revised=tuple(revised))
 
 
+def _sweep_repeat_seconds(ctx: StudyContext, p: Any) -> float | None:
+    """Seconds of one sweep repeat of ``p`` (its calibrated loops over its queries), or None
+    when it stays out of the sweep (not ok, not timed, or longer than the sweep takes)."""
+    if getattr(p, "status", "") != "ok" or not getattr(p, "seconds_median", None) \
+            or not getattr(p, "loops", 0) or not getattr(p, "n_queries", 0):
+        return None
+    repeat_s = float(p.seconds_median) * int(p.loops) * int(p.n_queries)
+    return repeat_s if repeat_s <= ctx.interleave_repeat_s else None
+
+
 def _sweep_reserve(ctx: StudyContext, points: Sequence[Any], next_point_s: float) -> float:
     """Seconds to keep for the interleaved sweep if one more point of ``next_point_s`` runs."""
     if ctx.interleave_rounds <= 0:
         return 0.0
-    round_s = 0.0
-    for p in points:
-        if getattr(p, "status", "") == "ok" and getattr(p, "seconds_median", None):
-            repeat_s = float(p.seconds_median) * max(int(p.loops or 1), 1) * \
-                max(int(p.n_queries or 1), 1)
-            if repeat_s <= ctx.interleave_repeat_s:
-                round_s += repeat_s
+    round_s = sum(r for p in points if (r := _sweep_repeat_seconds(ctx, p)) is not None)
     round_s += min(0.1 * next_point_s, ctx.interleave_repeat_s)
     return ctx.interleave_rounds * round_s * 1.2
 

@@ -121,7 +121,8 @@ class Point:
     are repeats taken after the curve finished, one per round of a sweep that visits the
     curve's sizes in a fresh random order each round (:func:`profiler.harness.run_curve`), so
     that a slow spell of a shared machine falls on random sizes rather than on one point.
-    :attr:`seconds_fastest` is what the time verdict is fitted on.
+    The time verdict is fitted on one statistic of these (:func:`profiler.analysis.time_cost`);
+    :attr:`seconds_fastest` is their least.
     """
 
     study: str
@@ -159,7 +160,7 @@ class Point:
 
     @property
     def seconds_fastest(self) -> float | None:
-        """Fastest per-query seconds: the statistic the time verdict is fitted on.
+        """Fastest per-query seconds (one candidate statistic for the time fit).
 
         Interference on a shared machine (another process, the hypervisor, frequency changes)
         only ever adds time to a repeat of fixed work, and it comes in spells that outlast a

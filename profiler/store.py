@@ -108,8 +108,9 @@ CREATE TABLE IF NOT EXISTS sweeps (
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
 #: Columns of ``points.csv`` / :func:`load_points`, in order (profile columns follow,
-#: prefixed ``profile_``). ``seconds_fastest`` is what the time verdict is fitted on
-#: (:attr:`profiler.records.Point.seconds_fastest`; the cap per query for censored points).
+#: prefixed ``profile_``). ``seconds_fastest`` is the point's fastest repeat
+#: (:attr:`profiler.records.Point.seconds_fastest`; the cap per query for censored points);
+#: the report adds ``seconds_fitted``, the cost the time verdict was fitted on.
 POINT_COLUMNS = ("study", "study_id", "curve", "curve_key", "family", "level", "method", "axis",
                  "topology", "fixed", "size", "status", "seconds_median", "seconds_min",
                  "seconds_max", "seconds_spread", "repeats", "loops", "n_queries", "work",
@@ -282,17 +283,20 @@ class Store:
     def __exit__(self, *exc: Any) -> None:
         self.close()
 
-    def _tx(self, statements: Iterable[tuple[str, tuple]]) -> None:
+    def _tx(self, statements: Iterable[tuple[str, tuple]]) -> int:
+        """Run ``statements`` in one transaction; returns the number of rows they changed."""
         with self._lock:
             con = self._con
             con.execute("BEGIN IMMEDIATE")
+            changed = 0
             try:
                 for sql, args in statements:
-                    con.execute(sql, args)
+                    changed += max(con.execute(sql, args).rowcount, 0)
                 con.execute("COMMIT")
             except BaseException:
                 con.execute("ROLLBACK")
                 raise
+        return changed
 
     # -- studies -------------------------------------------------------------------------------
     def open_study(self, spec: StudySpec, environment: dict, *, resume: bool) -> str:
@@ -374,21 +378,11 @@ class Store:
         """
         run = self._runs.get(point.study, 0)
         seconds = _dumps([float(x) for x in point.interleaved_seconds])
-        with self._lock:
-            con = self._con
-            con.execute("BEGIN IMMEDIATE")
-            try:
-                known = con.execute("SELECT 1 FROM points WHERE study_id=? AND curve=? AND size=?",
-                                    (point.study, int(point.curve), int(point.size))).fetchone()
-                if known:
-                    con.execute("INSERT OR REPLACE INTO sweeps VALUES (?, ?, ?, ?, ?, ?)",
-                                (point.study, int(point.curve), int(point.size), run, seconds,
-                                 time.time()))
-                con.execute("COMMIT")
-            except BaseException:
-                con.execute("ROLLBACK")
-                raise
-        return known is not None
+        key = (point.study, int(point.curve), int(point.size))
+        return self._tx([(
+            "INSERT OR REPLACE INTO sweeps SELECT ?, ?, ?, ?, ?, ? WHERE EXISTS "
+            "(SELECT 1 FROM points WHERE study_id=? AND curve=? AND size=?)",
+            (*key, run, seconds, time.time(), *key))]) > 0
 
     def set_curve(self, study_id: str, index: int, *, key: str, cut_by_budget: bool,
                   reason: str = "", theory: str | None = None, work_unit: str = "",

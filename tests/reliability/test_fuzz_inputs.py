@@ -331,24 +331,23 @@ def _load_claims(tmp_path: Path, text: str):
     return load_claims(path)
 
 
-def _study_case(tmp_path, data):
+def _toml_case(tmp_path, data, base: str, table: str, label: str, load) -> None:
+    """A mutation of ``base``: its text garbled, or its parsed tree altered and re-written."""
     import tomllib
 
     if data.draw(st.booleans()):
-        text = data.draw(mutated_text(STUDY))
+        text = data.draw(mutated_text(base))
     else:
-        text = to_toml(data.draw(mutated_tree(tomllib.loads(STUDY))), "curve")
-    expect_load_or_input_error("study-toml", _load_study, tmp_path, _safe(text))
+        text = to_toml(data.draw(mutated_tree(tomllib.loads(base))), table)
+    expect_load_or_input_error(label, load, tmp_path, _safe(text))
+
+
+def _study_case(tmp_path, data):
+    _toml_case(tmp_path, data, STUDY, "curve", "study-toml", _load_study)
 
 
 def _claims_case(tmp_path, data):
-    import tomllib
-
-    if data.draw(st.booleans()):
-        text = data.draw(mutated_text(CLAIMS))
-    else:
-        text = to_toml(data.draw(mutated_tree(tomllib.loads(CLAIMS))), "claim")
-    expect_load_or_input_error("claims-toml", _load_claims, tmp_path, _safe(text))
+    _toml_case(tmp_path, data, CLAIMS, "claim", "claims-toml", _load_claims)
 
 
 @FAST
