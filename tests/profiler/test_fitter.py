@@ -22,13 +22,15 @@ PHI = (1 + math.sqrt(5)) / 2
 
 # ---------------------------------------------------------------- a tiny local timing helper
 
-def _seconds(fns, *, min_seconds: float = 0.003, rounds: int = 7) -> list[float]:
+def _seconds(fns, *, min_seconds: float = 0.003, rounds: int = 21) -> list[float]:
     """CPU seconds per call of each function.
 
     Loops are calibrated until one repeat lasts ``min_seconds``; then ``rounds`` round-robin
     passes over all the functions, keeping each one's fastest repeat. Process CPU time and the
     minimum of interleaved repeats keep other jobs on a shared machine out of the figures (the
-    first call warms caches and is discarded)."""
+    first call warms caches and is discarded). 21 rounds, not 7: on a shared VM even CPU time
+    of fixed work varies 2x in spells, and with 7 rounds a size now and then never saw a quiet
+    one (a live kernel came out "leaning" once in a few full runs)."""
     clock = time.process_time
     loops = []
     for fn in fns:
