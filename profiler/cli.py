@@ -158,7 +158,7 @@ def _run_with_progress(spec, *, store: Path, out: Path, resume: bool, dask: Opti
     rows = _verdict_rows(result)
     if rows:
         headings = {"curve": "curve", "growth": "by work", "growth_time": "by time",
-                    "confidence": "confidence", "agreement": "theory", "points": "points",
+                    "confidence": "confidence", "agreement": "vs theory", "points": "points",
                     "flags": "flags"}
         columns = [c for c in headings if c != "flags" or any(r.get("flags") for r in rows)]
         console.print(_table(f"Verdicts — study {spec.name}", [headings[c] for c in columns],
