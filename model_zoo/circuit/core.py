@@ -34,6 +34,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from model_zoo.circuit import regions as _regions
 from model_zoo.errors import InputError
 
 __all__ = ["LEAF", "PRODUCT", "SUM", "Circuit", "CircuitBuilder", "forward", "log_values",
@@ -512,9 +513,7 @@ def _region_plan(circuit: Circuit):
     the circuit does not have the region structure."""
     cached = circuit._cache.get("_regions", False)
     if cached is False:
-        from model_zoo.circuit.regions import region_plan
-
-        cached = region_plan(circuit._plan, circuit.n_nodes)  # type: ignore[attr-defined]
+        cached = _regions.region_plan(circuit._plan, circuit.n_nodes)  # type: ignore[attr-defined]
         circuit._cache["_regions"] = cached
     return cached
 
@@ -558,10 +557,8 @@ def forward(circuit: Circuit, states: np.ndarray, *, mode: str = "sum",
     if mode == "sum" and engine == "auto":
         rplan = _region_plan(circuit)
         if rplan is not None:
-            from model_zoo.circuit.regions import root_log_values_from_states
-
-            return root_log_values_from_states(rplan, circuit._plan,  # type: ignore[attr-defined]
-                                               states)
+            return _regions.root_log_values_from_states(
+                rplan, circuit._plan, states)  # type: ignore[attr-defined]
     values = _run(circuit, states, mode)
     return values[circuit._plan.root_row].copy()  # type: ignore[attr-defined]
 

@@ -46,6 +46,11 @@ from typing import Any
 
 import numpy as np
 
+try:  # np.einsum without its Python dispatch (~1.4 us a call; the lean program makes ~10 a pass)
+    from numpy._core.multiarray import c_einsum as _einsum
+except ImportError:  # pragma: no cover - numpy < 2 or a renamed internal
+    _einsum = np.einsum
+
 __all__ = ["region_plan", "root_log_values", "root_log_values_from_states",
            "thin_root_log_values"]
 
@@ -331,7 +336,7 @@ def region_plan(plan: Any, n_plan_rows: int) -> RegionPlan | None:
                     n_chains=len(chains), n_chain_links=n_links)
     return RegionPlan(n_rows=rp.n_rows, n_leaves=rp.n_leaves, ops=rp.ops, root_row=rp.root_row,
                       n_chains=rp.n_chains, n_chain_links=rp.n_chain_links,
-                      thin=_thin_plan(rp, plan.leaf_logp, plan.leaf_logsum),
+                      thin=_thin_plan(rp, plan.leaf_logp, plan.leaf_logsum, plan.leaf_var),
                       log_linear=_log_linear_plan(rp))
 
 
@@ -545,6 +550,7 @@ class ThinPlan:
     root_row: int
     root_blk: int
     lean: Any = None         # _LeanProgram when the blocks form a tree and bounds allow, or None
+    leaf_var: np.ndarray | None = None  # (n_leaves,) variable of each leaf row
 
 
 @dataclass(frozen=True)
@@ -594,8 +600,8 @@ def _log_linear_plan(rp: RegionPlan) -> LogLinearPlan | None:
     return LogLinearPlan(leaves=keep, coef=leaf_coef[keep], const=const)
 
 
-def _thin_plan(rp: RegionPlan, leaf_logp: np.ndarray, leaf_logsum: np.ndarray
-               ) -> ThinPlan | None:
+def _thin_plan(rp: RegionPlan, leaf_logp: np.ndarray, leaf_logsum: np.ndarray,
+               leaf_var: np.ndarray | None = None) -> ThinPlan | None:
     """The stack-last re-layout of a region plan, or None when linear space is not safe.
 
     O(n_rows + weights) once.
@@ -673,7 +679,8 @@ def _thin_plan(rp: RegionPlan, leaf_logp: np.ndarray, leaf_logsum: np.ndarray
     root = int(new[rp.root_row])
     tp = ThinPlan(n_rows=n, n_blocks=next_blk, n_leaves=nl, leaf_table=table.reshape(-1),
                   leaf_base=(np.arange(nl) * (s + 1) + 1)[:, None], n_states=s,
-                  ops=tuple(ops), root_row=root, root_blk=int(blk_of[root]))
+                  ops=tuple(ops), root_row=root, root_blk=int(blk_of[root]),
+                  leaf_var=None if leaf_var is None else np.asarray(leaf_var, dtype=np.int64))
     lean = _lean_program(tp)
     if lean is None:
         return tp
@@ -781,15 +788,17 @@ def thin_root_log_values(tp: ThinPlan, leaf_var: np.ndarray, states: np.ndarray)
     """
     batch = states.shape[1]
     vals = np.empty((tp.n_rows + 1, batch))       # + a constant-one row (padding links)
-    idx = states.take(leaf_var, axis=0)
-    idx += tp.leaf_base
-    np.take(tp.leaf_table, idx, out=vals[:tp.n_leaves])
-    if tp.lean is not None:
+    lean = tp.lean
+    if lean is None or lean.needs_leaves:
+        idx = states.take(leaf_var, axis=0)
+        idx += tp.leaf_base
+        np.take(tp.leaf_table, idx, out=vals[:tp.n_leaves])
+    if lean is not None:
         vals[tp.n_rows] = 1.0
         if np.geterr()["under"] == "ignore":      # the default; errstate costs ~3 us a call
-            return _lean_root_log_values(tp, vals, batch)
+            return _lean_root_log_values(tp, vals, batch, states)
         with np.errstate(under="ignore"):         # negligible terms may underflow
-            return _lean_root_log_values(tp, vals, batch)
+            return _lean_root_log_values(tp, vals, batch, states)
     scale = np.empty((tp.n_blocks, batch))
     scale[0] = 0.0
     with np.errstate(divide="ignore", invalid="ignore", over="ignore", under="ignore"):
@@ -821,7 +830,8 @@ def thin_root_log_values(tp: ThinPlan, leaf_var: np.ndarray, states: np.ndarray)
 #   next op is still in range. Units above exp(-600) keep full relative precision; a term that
 #   underflows is < 1e-307 against a unit > 1e-260;
 # * K = 2: two levels merge into one op over four input sets (16 terms per unit, coefficients
-#   summed at plan time), halving the ops of a balanced circuit;
+#   summed at plan time), halving the ops of a balanced circuit; a one-unit root reading one
+#   block is folded into that block's op (its weights pre-multiplied by the root's);
 # * chains: a product's row sums lie within the products of its factors' row sums, and with
 #   positive links the ratio of two entries in one column (row) of P Q is at least the smallest
 #   such ratio of P (of Q) -- Birkhoff's contraction argument -- so entries stay within
@@ -829,9 +839,15 @@ def thin_root_log_values(tp: ThinPlan, leaf_var: np.ndarray, states: np.ndarray)
 #   several tree levels suffices. Chunks of c 2^k links (c = 1, 3, 5, 7; identity padding) are
 #   stored bit-reversed so each level multiplies two contiguous halves (einsum at width 2,
 #   stacked matmul wider); the last c matrices, the vector, and on right-linear circuits the
-#   base's op and the root's op, are one einsum;
+#   root's op, are one einsum, the base's op one matrix-vector product. A link reads the K
+#   leaves of one variable, so its matrix takes one of S + 1 values: they are tabulated at
+#   plan time and looked up from the states (with the base's leaves, one gather), and a
+#   program made of such chains fills no leaf rows at all;
 # * weighted sums reduce over a *leading* axis (contiguous rows); ops with few blocks
-#   (J <= _LEAN_MATMUL_J) run as one stacked matmul, which beats broadcasting there.
+#   (J <= _LEAN_MATMUL_J) run as one stacked matmul, which beats broadcasting there; wider
+#   two-set ops gather the two sets (not the grid of their products) and form, weigh and sum
+#   the products in one three-operand einsum. Every einsum here calls numpy's C entry point
+#   directly (the Python wrapper costs ~1.4 us of the ~5 us of a small einsum).
 # Zero inputs stay exactly zero (a zero block makes its parent zero, the root ends as -inf).
 
 #: Units of every computed block stay within exp(+-_LEAN_LIMIT) (doubles reach exp(+-708)).
@@ -850,6 +866,7 @@ class _LeanProgram:
     steps: tuple[tuple, ...]
     n_renorm: int            # ops or chain levels that renormalise (for tests and notes)
     n_levels: int            # ops plus chain tree levels
+    needs_leaves: bool = True  # False: every step reads states directly (no leaf rows filled)
 
 
 @dataclass(frozen=True)
@@ -989,6 +1006,28 @@ def _apply_fusion(gops: list[Any], merged: dict[int, _SetProduct],
     return result
 
 
+def _fold_root_op(gops: list[Any], root_row: int) -> list[Any]:
+    """Fold a one-unit root op that reads only the units of the single block before it into
+    that block's op (``root = sum_o c_o out_o``, so its weights become ``sum_o c_o w[o]``): one
+    op fewer on a balanced circuit. The same sums of products, regrouped; O(weights) once."""
+    if len(gops) < 2 or type(gops[-1]) is _TChain or type(gops[-2]) is _TChain:
+        return gops
+    root, below = gops[-1], gops[-2]
+    m, q, j_n = below.w.shape
+    if (len(root.sets) != 1 or root.w.shape[0] != 1 or root.w.shape[2] != 1 or j_n != 1
+            or root.out != root_row):
+        return gops
+    rows = root.sets[0][0][:, 0]
+    if ((rows < below.out) | (rows >= below.out + m)).any():
+        return gops
+    coef = np.zeros(m)
+    np.add.at(coef, rows - below.out, root.w[0, :, 0])
+    if not (coef > 0).all():             # a unit the root ignores: keep both ops
+        return gops
+    w = np.einsum("o,oq->q", coef, below.w[:, :, 0])[None, :, None]
+    return gops[:-2] + [_SetProduct(root.out, root.blk, below.sets, w)]
+
+
 def _lean_program(tp: ThinPlan, forced: frozenset = frozenset()) -> _LeanProgram | None:
     """The lean schedule of a thin plan, or None (blocks not a tree, or bounds too wide).
 
@@ -1014,7 +1053,7 @@ def _lean_program(tp: ThinPlan, forced: frozenset = frozenset()) -> _LeanProgram
     if not pos.size:
         return None
     leaf_lb, leaf_ub = float(np.log(pos.min())), float(np.log(pos.max()))
-    gops = _fuse_levels(_lean_ops(tp))
+    gops = _fold_root_op(_fuse_levels(_lean_ops(tp)), tp.root_row)
     # log-bounds on each block's maximum, relative to what was divided out (row 0: leaves)
     lb = np.zeros(n_blocks)
     ub = np.zeros(n_blocks)
@@ -1048,7 +1087,7 @@ def _lean_program(tp: ThinPlan, forced: frozenset = frozenset()) -> _LeanProgram
                 # too wide with the base as computed: plan again, renormalising the base's op
                 return _lean_program(tp, forced | {i})
             steps.append(step)
-            for _, _, _, flags, _, renorm_v in step[4]:
+            for _, _, _, flags, _, renorm_v, _ in step[4]:
                 n_renorm += int(sum(flags)) + renorm_v
                 n_levels += len(flags)
             lb[op.blk], ub[op.blk] = step[6], step[7]
@@ -1079,33 +1118,41 @@ def _lean_program(tp: ThinPlan, forced: frozenset = frozenset()) -> _LeanProgram
         else:
             lb[blocks], ub[blocks] = lo, hi
         n_levels += 1
-        mm = j_n <= _LEAN_MATMUL_J
+        mm: bool | str = j_n <= _LEAN_MATMUL_J
         if mm:                                     # (s, J, q) gathers, (J, m, q) weights
             idx = np.ascontiguousarray(idx.transpose(0, 2, 1))
             w = np.ascontiguousarray(w.transpose(2, 0, 1))
-        else:                                      # (s, q, J) gathers, (q, m, J, 1) weights
-            w = np.ascontiguousarray(w.transpose(1, 0, 2))[..., None]
+        elif len(sets) == 2 and sizes[0] == sizes[1]:
+            # two sets: gather the sets themselves, not the q-grid of their products, and let
+            # one three-operand einsum form and weigh the products (2 calls instead of 3)
+            mm = "sets"
+            idx = np.stack([rows for rows, _ in sets])          # (2, k, J)
+            w = np.ascontiguousarray(w.reshape(m, sizes[0], sizes[1], j_n))
+        else:                                      # (s, q, J) gathers, (q, m, J) weights
+            w = np.ascontiguousarray(w.transpose(1, 0, 2))
         steps.append((mm, g.out, m, q, j_n, len(sets), idx, w, renorm))
-    steps = _fold_into_chains(steps, tp)
-    return _LeanProgram(steps=tuple(steps), n_renorm=n_renorm, n_levels=n_levels)
+    steps = _state_tables(_fold_into_chains(steps, tp), tp)
+    needs = any(st[0] is not None or any(ch[6] is None for ch in st[4]) for st in steps)
+    return _LeanProgram(steps=tuple(steps), n_renorm=n_renorm, n_levels=n_levels,
+                        needs_leaves=needs)
 
 
 def _fold_into_chains(steps: list[tuple], tp: ThinPlan) -> list[tuple]:
-    """Fold into a one-chunk chain's final einsum the op computing its base from two leaf sets
-    (when the einsum keeps <= 512 terms per column) and the root op reading only the chain's
-    output: two ops fewer on a right-linear circuit. The same sums of products, reordered."""
+    """Fold into a one-chunk chain the op computing its base from two leaf sets (one
+    matrix-vector product after the links' gather) and the root op reading only the chain's
+    output (into the final einsum): two ops fewer on a right-linear circuit. The same sums of
+    products, reordered."""
     drop: set[int] = set()
     for ci, st in enumerate(steps):
         if st[0] is not None or len(st[4]) != 1:
             continue
         _, out, m, stacked, chunks, base_rows, v_lo, v_hi, _, _ = st
-        rows, w, c, flags, subs, renorm_v = chunks[0]
+        rows, w, c, flags, subs, renorm_v, tab = chunks[0]
         base_fold = root_fold = None
         for bi in range(ci):
             b = steps[bi]
             if (b[0] is True and b[4] == 1 and b[5] == 2 and not b[8] and b[1] <= base_rows.min()
-                    and base_rows.max() < b[1] + b[2] and (b[6] < tp.n_leaves).all()
-                    and m ** (c + 1) * b[3] <= 512):
+                    and base_rows.max() < b[1] + b[2] and (b[6] < tp.n_leaves).all()):
                 wb = b[7][0]                               # (m_b, q): rows b.out + mo
                 pairs = np.ascontiguousarray(b[6][:, 0])          # (2, q) leaf rows
                 base_fold = (np.ascontiguousarray(wb[base_rows - b[1]]), pairs,
@@ -1122,14 +1169,66 @@ def _fold_into_chains(steps: list[tuple], tp: ThinPlan) -> list[tuple]:
             drop.add(len(steps) - 1)
         if base_fold is None and root_fold is None:
             continue
-        head, _, tail = subs.partition("->")
-        pre, _, vec = head.rpartition(",")             # vec: "jb"
-        if base_fold is not None:
-            head = pre + ",jy,yb,yb"
-        subs = ("i," + head + "->b") if root_fold is not None else head + "->" + tail
-        steps[ci] = (None, out, m, stacked, ((rows, w, c, flags, subs, renorm_v),), base_rows,
-                     v_lo, v_hi, base_fold, root_fold)
+        if root_fold is not None:
+            subs = "i," + subs.partition("->")[0] + "->b"
+        steps[ci] = (None, out, m, stacked, ((rows, w, c, flags, subs, renorm_v, tab),),
+                     base_rows, v_lo, v_hi, base_fold, root_fold)
     return [st for i, st in enumerate(steps) if i not in drop]
+
+
+def _state_tables(steps: list[tuple], tp: ThinPlan) -> list[tuple]:
+    """Give each chain chunk whose links each read the leaves of one variable a table of its
+    link matrices for every state of that variable (and, on a folded base, of the base's leaf
+    values): at run time one gather from the states replaces filling the leaf rows, gathering
+    them and contracting them with the weights. The same sums of products, done at plan time.
+
+    A chunk keeps ``None`` (the leaf-row route) when a link mixes variables, when the table would
+    be over twice the size of the link weights (``S + 1 > 2 f``), or without ``leaf_var``.
+    O(links x m^2 x S) once.
+    """
+    if tp.leaf_var is None:
+        return steps
+    s1 = tp.n_states + 1
+    table2 = tp.leaf_table.reshape(tp.n_leaves, s1)
+    out_steps = []
+    for st in steps:
+        if st[0] is not None:
+            out_steps.append(st)
+            continue
+        _, out, m, stacked, chunks, base_rows, v_lo, v_hi, base_fold, root_fold = st
+        new_chunks = []
+        for ci, (rows, w, c, flags, subs, renorm_v, _) in enumerate(chunks):
+            tab = None
+            lrows = rows if stacked else rows.T            # (P, f)
+            p_n, f = lrows.shape
+            pad = lrows == tp.n_rows                        # the constant-one row
+            real = ~pad.any(axis=1)
+            if (s1 <= 2 * f and (pad.all(axis=1) | real).all() and real.any()
+                    and (lrows[real] < tp.n_leaves).all()):
+                var = np.zeros(p_n, dtype=np.int64)
+                lv = tp.leaf_var[np.where(pad, 0, lrows)]  # (P, f)
+                if (lv[real] == lv[real][:, :1]).all():
+                    var[real] = lv[real, 0]
+                    vals = np.ones((p_n, f, s1))
+                    vals[real] = table2[lrows[real]]
+                    if stacked:                             # w (P, f, m m) -> (P, m m, S + 1)
+                        mats = np.einsum("pfx,pfs->pxs", w, vals)
+                    else:                                   # w (f, m, m, P) -> (m, m, P, S + 1)
+                        mats = np.einsum("fmcp,pfs->mcps", w, vals)
+                    n_mat = mats.size // s1
+                    svar = (np.repeat(var, m * m) if stacked else np.tile(var, m * m))
+                    parts, offs, svars = [mats.reshape(-1)], [np.arange(n_mat) * s1 + 1], [svar]
+                    if base_fold is not None and ci == 0:
+                        pairs = base_fold[1].reshape(-1)    # (2 q,) leaf rows
+                        parts.append(table2[pairs].reshape(-1))
+                        offs.append(mats.size + np.arange(pairs.size) * s1 + 1)
+                        svars.append(tp.leaf_var[pairs])
+                    tab = (np.concatenate(svars), np.concatenate(offs)[:, None],
+                           np.concatenate(parts), n_mat)
+            new_chunks.append((rows, w, c, flags, subs, renorm_v, tab))
+        out_steps.append((None, out, m, stacked, tuple(new_chunks), base_rows, v_lo, v_hi,
+                          base_fold, root_fold))
+    return out_steps
 
 
 def _chain_schedule(lo: float, hi: float, depth: int, c: int, s_r: float, s: float,
@@ -1249,35 +1348,49 @@ def _lean_chain(op: _TChain, table: np.ndarray, one_row: int, base: tuple[float,
         if stacked:                                # gathers (P, f), weights (P, f, m m)
             chunks.append((np.ascontiguousarray(rows.T),
                            np.ascontiguousarray(ws.transpose(3, 0, 1, 2).reshape(p, f, m * m)),
-                           c, flags, subs, renorm_v))
+                           c, flags, subs, renorm_v, None))
         else:                                      # gathers (f, P), weights (f, m, m, P)
             chunks.append((np.ascontiguousarray(rows), np.ascontiguousarray(ws), c, flags,
-                           subs, renorm_v))
+                           subs, renorm_v, None))
     return (None, op.out, m, stacked, tuple(chunks), op.base_rows, v_lo, v_hi, None, None)
 
 
-def _lean_chain_run(vals: np.ndarray, step: tuple, batch: int, divisors: list) -> None:
+def _lean_chain_run(vals: np.ndarray, states: np.ndarray, step: tuple, batch: int,
+                    divisors: list) -> None:
     """One chain step: chunk by chunk from the bottom, the tree of halves, then the final
     einsum; appends each divisor to ``divisors``. O(L m^3 B) arithmetic, O(log L) calls."""
     _, out, m, stacked, chunks, base_rows, _, _, base_fold, root_fold = step
-    einsum, maxr = np.einsum, np.maximum.reduce
+    einsum, maxr = _einsum, np.maximum.reduce
+    g = gb = v = None
     if base_fold is None:
-        v = [vals.take(base_rows, axis=0)]                      # (m, B)
-        g = None
-    else:          # the base block's op: weights (m, q), leaf pairs; one gather with the links'
-        both = vals.take(base_fold[2], axis=0)
+        v = vals.take(base_rows, axis=0)                        # (m, B)
+    elif chunks[0][6] is None:     # the base block's op: weights (m, q), leaf pairs; one gather
+        both = vals.take(base_fold[2], axis=0)                  # with the links'
         n_links = chunks[0][0].size
         g = both[:n_links].reshape(chunks[0][0].shape + (batch,))
         gb = both[n_links:].reshape(2, -1, batch)               # (2, q, B)
-        v = [base_fold[0], gb[0], gb[1]]
-    for rows, w, c, flags, subs, renorm_v in chunks:
-        if g is None:
-            g = vals.take(rows, axis=0)            # (P, f, B) stacked, else (f, P, B)
+    for rows, w, c, flags, subs, renorm_v, tab in chunks:
         p = rows.shape[0] if stacked else rows.shape[1]
-        if stacked:                                # (P, B, m, m)
-            mats = np.matmul(g.transpose(0, 2, 1), w).reshape(p, batch, m, m)
-        else:                                      # (m, m, P, B)
-            mats = einsum("fmcp,fpb->mcpb", w, g)
+        if tab is not None:                        # link matrices looked up by state
+            t = states.take(tab[0], axis=0)
+            t += tab[1]
+            t = tab[2].take(t)                     # (E, B)
+            n_mat = tab[3]
+            if stacked:                            # (P, B, m, m)
+                mats = t[:n_mat].reshape(p, m, m, batch).transpose(0, 3, 1, 2)
+            else:                                  # (m, m, P, B)
+                mats = t[:n_mat].reshape(m, m, p, batch)
+            if v is None:
+                gb = t[n_mat:].reshape(2, -1, batch)
+        else:
+            if g is None:
+                g = vals.take(rows, axis=0)        # (P, f, B) stacked, else (f, P, B)
+            if stacked:                            # (P, B, m, m)
+                mats = np.matmul(g.transpose(0, 2, 1), w).reshape(p, batch, m, m)
+            else:                                  # (m, m, P, B)
+                mats = einsum("fmcp,fpb->mcpb", w, g)
+        if v is None:                              # the folded base: (m, q) @ (q, B)
+            v = np.matmul(base_fold[0], np.multiply(gb[0], gb[1]))
         level = 0
         while True:
             if flags[level]:
@@ -1301,35 +1414,34 @@ def _lean_chain_run(vals: np.ndarray, step: tuple, batch: int, divisors: list) -
         head: list = []
         if root_fold is not None:          # the root op: weights (m,) on the chain's output
             head, dest = [root_fold[0]], vals[root_fold[1]]
-        else:
-            dest = None if renorm_v else vals[out:out + m]
-        if stacked:
-            r = einsum(subs, *head, *mats, *v, out=dest)        # (m, B), or (B,): the root
-        else:
-            r = einsum(subs, *head, *mats.transpose(2, 0, 1, 3), *v, out=dest)
+        else:                              # a fresh array when it is renormalised below
+            dest = np.empty((m, batch)) if renorm_v else vals[out:out + m]
+        # (m, B), or (B,): the root
+        r = einsum(subs, *head, *(mats if stacked else mats.transpose(2, 0, 1, 3)), v, out=dest)
         if renorm_v:
             mx = maxr(r, 0)
             np.maximum(mx, _TINY, out=mx)
             r = np.divide(r, mx, out=vals[out:out + m])
             divisors.append(mx[None])
-        v = [r]
+        v = r
         g = None
 
 
-def _lean_root_log_values(tp: ThinPlan, vals: np.ndarray, batch: int) -> np.ndarray:
-    """Run the lean program on ``vals`` whose leaf rows are filled; root log-values ``(B,)``.
+def _lean_root_log_values(tp: ThinPlan, vals: np.ndarray, batch: int,
+                          states: np.ndarray) -> np.ndarray:
+    """Run the lean program on ``vals`` whose leaf rows are filled (unless the program reads
+    only ``states``, the ``(n_variables, B)`` states); root log-values ``(B,)``.
 
-    O(n_edges x batch) arithmetic in about 4 numpy calls per op (3 more where it renormalises)
+    O(n_edges x batch) arithmetic in 2-3 numpy calls per op (3 more where it renormalises)
     and 2-3 per chain tree level.
     """
     divisors: list[np.ndarray] = []
-    add_reduce, max_reduce, multiply, matmul = np.add.reduce, np.maximum.reduce, np.multiply, \
-        np.matmul
-    multiply_reduce = np.multiply.reduce
+    max_reduce, multiply, multiply_reduce = np.maximum.reduce, np.multiply, np.multiply.reduce
+    matmul, einsum = np.matmul, _einsum
     for step in tp.lean.steps:
         mm = step[0]
         if mm is None:
-            _lean_chain_run(vals, step, batch, divisors)
+            _lean_chain_run(vals, states, step, batch, divisors)
             continue
         _, out, m, q, j_n, n_in, idx, w, renorm = step
         slab = vals[out:out + m * j_n].reshape(m, j_n, batch)
@@ -1341,14 +1453,18 @@ def _lean_root_log_values(tp: ThinPlan, vals: np.ndarray, batch: int) -> np.ndar
             else:
                 j1 = min(j_n, j0 + jstep)
                 dest = slab[:, j0:j1]
-                ix, wj = (idx[:, j0:j1], w[j0:j1]) if mm else (idx[..., j0:j1], w[:, :, j0:j1])
-            g = vals.take(ix, axis=0)              # (s, J, q, B) if mm else (s, q, J, B)
-            p = g[0] if n_in == 1 else multiply(g[0], g[1], out=g[0]) if n_in == 2 else \
-                multiply_reduce(g, 0)
-            if mm:
-                matmul(wj, p, out=dest.transpose(1, 0, 2))      # (J, m, q) @ (J, q, B)
+                ix, wj = ((idx[:, j0:j1], w[j0:j1]) if mm is True else
+                          (idx[..., j0:j1], w[..., j0:j1]))
+            g = vals.take(ix, axis=0)   # (s, J, q, B) matmul, (2, k, J, B) sets, else (s, q, J, B)
+            if mm == "sets":                                    # weights (m, k, k, J)
+                einsum("marj,ajb,rjb->mjb", wj, g[0], g[1], out=dest)
             else:
-                add_reduce(wj * p[:, None], 0, out=dest)        # sum_q (q, m, J, B)
+                p = g[0] if n_in == 1 else multiply(g[0], g[1], out=g[0]) if n_in == 2 else \
+                    multiply_reduce(g, 0)
+                if mm:
+                    matmul(wj, p, out=dest.transpose(1, 0, 2))  # (J, m, q) @ (J, q, B)
+                else:
+                    einsum("qmj,qjb->mjb", wj, p, out=dest)    # sum_q (q, m, J) (q, J, B)
             if renorm:
                 mx = max_reduce(dest, 0)                        # (J, B)
                 np.maximum(mx, _TINY, out=mx)
@@ -1364,6 +1480,7 @@ def _lean_root_log_values(tp: ThinPlan, vals: np.ndarray, batch: int) -> np.ndar
         div = divisors[0] if len(divisors) == 1 else np.concatenate(divisors)
         out += np.add.reduce(np.log(div), 0)
     return out
+
 
 def root_log_values_from_states(rplan: RegionPlan, plan: Any, states: np.ndarray) -> np.ndarray:
     """Root log-values ``(batch,)`` from ``(n_variables, batch)`` int64 states (-1 = free).
@@ -1384,10 +1501,9 @@ def root_log_values_from_states(rplan: RegionPlan, plan: Any, states: np.ndarray
             return ll.const + ll.coef @ leaf
     tp: ThinPlan | None = rplan.thin
     if tp is not None and batch < THIN_MAX_BATCH and states.size:
-        # -1 <= state < n_states, in one reduction: state + 1 as unsigned wraps -2, -3, ... high
-        top = np.maximum.reduce((states.astype(np.int64, copy=False) + 1).view(np.uint64),
-                                axis=None)
-        if top <= tp.n_states:
+        # -1 <= state < n_states (two reductions, no temporary)
+        if (np.maximum.reduce(states, axis=None) < tp.n_states
+                and np.minimum.reduce(states, axis=None) >= -1):
             return thin_root_log_values(tp, plan.leaf_var, states)
     from model_zoo.circuit.core import _leaf_rows
 

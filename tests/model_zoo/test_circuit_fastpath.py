@@ -210,7 +210,10 @@ def test_zero_leaf_blocks_give_minus_infinity_in_the_lean_program():
             table = tp.leaf_table.copy().reshape(tp.n_leaves, s + 1)
             leaves = np.flatnonzero(c._plan.leaf_var == var)
             table[leaves, 1 + 1] = 0.0                 # state 1 of `var` has probability 0
-            zeroed = dataclasses.replace(tp, leaf_table=table.reshape(-1))
+            zeroed = dataclasses.replace(tp, leaf_table=table.reshape(-1), lean=None)
+            # the program is planned from the leaf table (state tables of chain links)
+            zeroed = dataclasses.replace(zeroed, lean=regions._lean_program(zeroed))
+            assert zeroed.lean is not None
             states = np.random.default_rng(var).integers(-1, 2, size=(n, 3))
             states[var] = [1, 0, -1]
             got = regions.thin_root_log_values(zeroed, c._plan.leaf_var, states)
@@ -233,6 +236,41 @@ def test_lean_program_with_small_chunks(monkeypatch):
         states = np.random.default_rng(7).integers(-1, 2, size=(n, 4))
         assert np.allclose(_thin(c, states), forward(c, states, engine="layers"),
                            rtol=1e-12, atol=1e-9)
+
+
+@pytest.mark.parametrize("n,k", [(300, 2), (60, 3), (30, 4), (12, 8)])
+def test_chain_links_by_state_table(n, k):
+    """Right-linear chains look their link matrices (and the folded base's leaves) up by state:
+    no leaf rows are filled. Also the leaf-row route, forced by a leaf-to-variable map under
+    which links mix variables, gives the same values."""
+    import dataclasses
+
+    c = vtree_circuit(n, k, topology="right_linear", seed=n)
+    tp = _region_plan(c).thin
+    chains = [st for st in tp.lean.steps if st[0] is None]
+    assert chains and all(ch[6] is not None for st in chains for ch in st[4])
+    assert len(chains) == len(tp.lean.steps) and not tp.lean.needs_leaves
+    mixed = dataclasses.replace(tp, leaf_var=np.roll(tp.leaf_var, 1), lean=None)
+    mixed = dataclasses.replace(mixed, lean=regions._lean_program(mixed))
+    assert mixed.lean.needs_leaves
+    assert all(ch[6] is None for st in mixed.lean.steps if st[0] is None for ch in st[4])
+    states = np.random.default_rng(k).integers(-1, 2, size=(n, 3))
+    want = forward(c, states, engine="layers")
+    assert np.allclose(_thin(c, states), want, rtol=1e-12, atol=1e-9)
+    assert np.allclose(regions.thin_root_log_values(mixed, c._plan.leaf_var, states), want,
+                       rtol=1e-12, atol=1e-9)
+
+
+def test_balanced_root_op_is_folded_into_the_op_below():
+    """The one-unit root of a balanced K = 2 circuit is computed by the last merged op itself
+    (its weights pre-multiplied by the root's): no separate root step."""
+    c = vtree_circuit(626, 2, topology="balanced", seed=0)
+    tp = _region_plan(c).thin
+    last = tp.lean.steps[-1]
+    assert last[0] is not None and last[1] == tp.root_row and last[2] == 1 and last[5] == 4
+    states = np.random.default_rng(1).integers(-1, 2, size=(626, 2))
+    assert np.allclose(_thin(c, states), forward(c, states, engine="layers"),
+                       rtol=1e-12, atol=1e-9)
 
 
 @pytest.mark.parametrize("topology", ["balanced", "right_linear"])
