@@ -27,6 +27,7 @@ queries costs B times that. ``predicted_work`` is the same formula from the stru
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
@@ -183,7 +184,8 @@ class CircuitFamily(FamilyBase):
         per = float(c.n_edges + c.n_nodes)
         n_samples = int(self.params.get("determinism_samples", 512))
         n_samples = int(min(n_samples, max(8, _DETERMINISM_BUDGET // max(per, 1))))
-        total = float(np.prod(c.cards, dtype=np.float64))
+        with np.errstate(over="ignore"):             # past ~1000 binary variables: inf
+            total = float(np.prod(c.cards, dtype=np.float64))
         limit = checks.EXHAUSTIVE_LIMIT if total * per <= 5 * _DETERMINISM_BUDGET else 0
         return checks.determinism(c, n_samples=n_samples, seed=instance.seed, limit=limit)
 
@@ -546,7 +548,7 @@ def network_joint(net: DiscreteNetwork, *, limit: int = checks.EXHAUSTIVE_LIMIT
     """The network's joint as an array over ``net.variables`` (product of CPTs), or None
     beyond ``limit`` entries. O(n x prod(cards))."""
     cards = [net.card(v) for v in net.variables]
-    if float(np.prod(cards, dtype=np.float64)) > limit:
+    if math.prod(cards) > limit:                      # exact: no float overflow
         return None
     axis = {v: i for i, v in enumerate(net.variables)}
     joint = np.ones(cards)
