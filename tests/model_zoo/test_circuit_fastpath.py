@@ -238,14 +238,15 @@ def test_lean_program_with_small_chunks(monkeypatch):
                            rtol=1e-12, atol=1e-9)
 
 
-@pytest.mark.parametrize("n,k", [(300, 2), (60, 3), (30, 4), (12, 8)])
-def test_chain_links_by_state_table(n, k):
+@pytest.mark.parametrize("n,k,s", [(300, 2, 2), (60, 3, 2), (30, 4, 2), (12, 8, 2), (80, 2, 3),
+                                   (50, 3, 4)])
+def test_chain_links_by_state_table(n, k, s):
     """Right-linear chains look their link matrices (and the folded base's leaves) up by state:
     no leaf rows are filled. Also the leaf-row route, forced by a leaf-to-variable map under
     which links mix variables, gives the same values."""
     import dataclasses
 
-    c = vtree_circuit(n, k, topology="right_linear", seed=n)
+    c = vtree_circuit(n, k, topology="right_linear", seed=n, n_states=s)
     tp = _region_plan(c).thin
     chains = [st for st in tp.lean.steps if st[0] is None]
     assert chains and all(ch[6] is not None for st in chains for ch in st[4])
@@ -254,10 +255,22 @@ def test_chain_links_by_state_table(n, k):
     mixed = dataclasses.replace(mixed, lean=regions._lean_program(mixed))
     assert mixed.lean.needs_leaves
     assert all(ch[6] is None for st in mixed.lean.steps if st[0] is None for ch in st[4])
-    states = np.random.default_rng(k).integers(-1, 2, size=(n, 3))
+    states = np.random.default_rng(k).integers(-1, s, size=(n, 3))
     want = forward(c, states, engine="layers")
     assert np.allclose(_thin(c, states), want, rtol=1e-12, atol=1e-9)
     assert np.allclose(regions.thin_root_log_values(mixed, c._plan.leaf_var, states), want,
+                       rtol=1e-12, atol=1e-9)
+
+
+def test_chain_links_with_many_states_keep_the_leaf_rows():
+    """Past S + 1 > 2 K a link table would outgrow the link weights: the chain gathers leaf rows
+    as before, with the same values."""
+    c = vtree_circuit(60, 2, topology="right_linear", seed=5, n_states=4)
+    tp = _region_plan(c).thin
+    assert tp.lean.needs_leaves
+    assert all(ch[6] is None for st in tp.lean.steps if st[0] is None for ch in st[4])
+    states = np.random.default_rng(5).integers(-1, 4, size=(60, 2))
+    assert np.allclose(_thin(c, states), forward(c, states, engine="layers"),
                        rtol=1e-12, atol=1e-9)
 
 

@@ -100,7 +100,7 @@ def _spec(sizes, queries=1):
 
 
 def _timeit_seconds(n: int) -> float:
-    """timeit on the call the harness times: the family's ``answer`` on an instance built the
+    """timeit on the call the harness times: the family's ``answer`` on an instance built
     the same way (random normal entries, 64-byte aligned), one BLAS thread."""
     from threadpoolctl import threadpool_limits
 
