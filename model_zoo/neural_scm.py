@@ -39,6 +39,13 @@ weights each world by P(u):
   pass gives the posterior over worlds (P(u) restricted to worlds consistent with e), then the
   descendants of X that the target needs are recomputed under do(X=x) in the same worlds.
 
+World weights are products of exogenous probabilities in double precision. When the evidence's
+probability comes out below 1e-250, worlds consistent with it may have underflowed to weight
+zero, so the engine enumerates a second time with log weights (sums of ln P(u), summed by
+log-sum-exp): evidence as unlikely as exp(-1000) gets its exact conditional, and only evidence
+no world satisfies raises "evidence has probability zero". That rare second pass counts twice
+the work and says so in the answer's note.
+
 ``sampling`` draws ``n_samples`` worlds from P(U) (stream ``make_rng(seed, "sampling", crc32 of
 the query)``), runs the same passes and keeps the samples whose (factual) world matches the
 evidence (rejection). The estimate is the accepted fraction; its standard error is the binomial
@@ -865,6 +872,42 @@ def enumeration_shapes(scm: NeuralSCM, query: Query, *, prune: bool = True
     return int(n_chunks), shapes
 
 
+#: Below this linear-space evidence probability the exact engine re-enumerates in log space:
+#: a world of weight < 1e-308 underflows to zero, which matters only when the worlds that
+#: remain are not overwhelmingly heavier (at 1e-250 an underflowed world is < 1e-58 of them).
+_LINEAR_DEN_MIN = 1e-250
+
+
+def _chunks(layout: _Layout):
+    """(leading states, exogenous values) of every chunk of ``layout.rows`` worlds: the
+    trailing inputs enumerated once, the leading ones constant within a chunk."""
+    m = layout.rows
+    for lead in itertools.product(*map(range, layout.leading_cards)):
+        exo = dict(layout.trailing_values)
+        for j, u in zip(layout.leading, lead):
+            exo[j] = np.full(m, u, dtype=np.intp)
+        yield lead, exo
+
+
+def _log_sum(logs: Sequence[float]) -> float:
+    """ln sum exp(logs), -inf for none (or all -inf)."""
+    top = max(logs, default=-math.inf)
+    if top == -math.inf:
+        return -math.inf
+    return top + math.log(math.fsum(math.exp(x - top) for x in logs))
+
+
+def _log_sum_where(log_w: np.ndarray, mask: np.ndarray) -> float:
+    """ln sum of exp(log_w) over the rows where ``mask`` is nonzero; -inf when there are none."""
+    sel = log_w[np.asarray(mask, dtype=bool)]
+    if not sel.size:
+        return -math.inf
+    top = float(sel.max())
+    if top == -math.inf:
+        return -math.inf
+    return top + float(np.log(np.sum(np.exp(sel - top))))
+
+
 def _describe_zero(query: Query) -> str:
     ev = ", ".join(f"{v}={s}" for v, s in query.evidence) or "(none)"
     return f"evidence has probability zero: {ev} in {query.describe()}"
@@ -1431,21 +1474,49 @@ class NeuralSCMFamily(FamilyBase):
         m = layout.rows
         scratch = _borrow_scratch(scm, m)
         num = den = 0.0
-        for lead in itertools.product(*map(range, layout.leading_cards)):
-            scale = 1.0
-            exo = dict(layout.trailing_values)
-            for j, u in zip(layout.leading, lead):
-                scale *= float(scm.exogenous_probabilities[j][u])
-                exo[j] = np.full(m, u, dtype=np.intp)
+        probs = scm.exogenous_probabilities
+        for lead, exo in _chunks(layout):
+            scale = math.prod(float(probs[j][u]) for j, u in zip(layout.leading, lead))
             mask, hit = _outcomes(scm, plan, exo, m, scratch, layout.trailing_codes)
             den += scale * float(np.dot(layout.trailing_weights, mask))
             num += scale * float(np.dot(layout.trailing_weights, hit))
-        _return_scratch(scm, scratch)
         n_worlds = layout.n_worlds
-        if den <= 0.0:
-            raise ModelError(_describe_zero(query))
-        return Answer(value=min(1.0, num / den), work=float(n_worlds) * plan.multiply_adds,
-                      note=f"{n_worlds} worlds")
+        work = float(n_worlds) * plan.multiply_adds
+        if den < _LINEAR_DEN_MIN:
+            # The evidence's probability is near or below what doubles hold: worlds consistent
+            # with it may have underflowed to zero weight. Enumerate again in log space (the
+            # exact weights of every world, however small); a second pass only in this case.
+            log_num, log_den = self._exact_log_space(scm, plan, layout, scratch)
+            _return_scratch(scm, scratch)
+            if log_den == -math.inf:
+                raise ModelError(_describe_zero(query))
+            return Answer(value=min(1.0, math.exp(log_num - log_den)), work=2.0 * work,
+                          note=f"{n_worlds} worlds, twice (log space: P(evidence) = "
+                               f"exp({log_den:.1f}))")
+        _return_scratch(scm, scratch)
+        return Answer(value=min(1.0, num / den), work=work, note=f"{n_worlds} worlds")
+
+    @staticmethod
+    def _exact_log_space(scm: NeuralSCM, plan: _Plan, layout: _Layout, scratch: Any
+                         ) -> tuple[float, float]:
+        """(ln numerator, ln denominator) of the exact conditional, every world weighted by
+        ln P(u) (sums of logs, never underflowing) and summed by log-sum-exp per chunk.
+        Same cost as the linear pass plus O(worlds) exp/log; -inf when no world counts."""
+        with np.errstate(divide="ignore"):
+            log_p = [np.log(np.asarray(p, dtype=np.float64)) for p in scm.exogenous_probabilities]
+        m = layout.rows
+        log_tw = np.zeros(m)
+        for j, col in layout.trailing_values.items():
+            log_tw += log_p[j][col]
+        nums, dens = [], []
+        for lead, exo in _chunks(layout):
+            log_scale = math.fsum(float(log_p[j][u]) for j, u in zip(layout.leading, lead))
+            if log_scale == -math.inf:
+                continue
+            mask, hit = _outcomes(scm, plan, exo, m, scratch, layout.trailing_codes)
+            dens.append(log_scale + _log_sum_where(log_tw, mask))
+            nums.append(log_scale + _log_sum_where(log_tw, hit))
+        return _log_sum(nums), _log_sum(dens)
 
     def _sampling(self, scm: NeuralSCM, query: Query, plan: _Plan) -> Answer:
         n = self._p("n_samples")
