@@ -695,6 +695,17 @@ def _normalise_into(out: np.ndarray, dest: np.ndarray, log_scale: np.ndarray) ->
     np.log(mx, out=log_scale)
 
 
+def _store_chunk(out: np.ndarray, dest: np.ndarray, scale: np.ndarray, blk: int, j0: int,
+                 j1: int, input_blks: tuple, whole: bool) -> None:
+    """Blocks ``j0:j1`` of an op: ``out`` normalised into ``dest``, their log-scales set to
+    its logs plus the log-scales of the input blocks (None: leaves, scale 0)."""
+    s = scale[blk + j0:blk + j1]
+    _normalise_into(out, dest, s)
+    for b in input_blks:
+        if b is not None:
+            s += scale[b if whole else b[j0:j1]]
+
+
 def _thin_cross(vals, scale, op: _TCross, batch: int) -> None:
     m, ar, j_all = op.w.shape[0], op.w.shape[1], op.w.shape[2]
     slab = vals[op.out:op.out + m * j_all].reshape(m, j_all, batch)
@@ -711,12 +722,8 @@ def _thin_cross(vals, scale, op: _TCross, batch: int) -> None:
             out = w[:, 0] * p[0]
         else:
             out = (w * p[None]).sum(axis=1)                     # (m, J, B)
-        s = scale[op.blk + j0:op.blk + j1]
-        _normalise_into(out, slab if whole else slab[:, j0:j1], s)
-        if op.a_blk is not None:
-            s += scale[op.a_blk if whole else op.a_blk[j0:j1]]
-        if op.r_blk is not None:
-            s += scale[op.r_blk if whole else op.r_blk[j0:j1]]
+        _store_chunk(out, slab if whole else slab[:, j0:j1], scale, op.blk, j0, j1,
+                     (op.a_blk, op.r_blk), whole)
 
 
 def _thin_mix(vals, scale, op: _TMix, batch: int) -> None:
@@ -727,10 +734,7 @@ def _thin_mix(vals, scale, op: _TMix, batch: int) -> None:
         j1 = min(j_all, j0 + step)
         cv = vals[op.rows[:, j0:j1]]                             # (k, J, B)
         out = (op.w[:, :, j0:j1] * cv[None]).sum(axis=1)         # (m, J, B)
-        s = scale[op.blk + j0:op.blk + j1]
-        _normalise_into(out, slab[:, j0:j1], s)
-        if op.c_blk is not None:
-            s += scale[op.c_blk[j0:j1]]
+        _store_chunk(out, slab[:, j0:j1], scale, op.blk, j0, j1, (op.c_blk,), False)
 
 
 def _thin_renormalise(p: np.ndarray, log_scale: np.ndarray) -> None:

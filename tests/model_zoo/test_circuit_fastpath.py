@@ -106,8 +106,15 @@ def test_out_of_range_states_behave_as_on_the_layered_engine():
     c = vtree_circuit(10, 2, topology="balanced", seed=0)
     states = np.full((10, 1), -2)
     states[3, 0] = 1
-    assert np.allclose(forward(c, states), forward(c, states, engine="layers"), atol=1e-12)
-    states[4, 0] = 2
+    _check_out_of_range(c, states, (4, 0), atol=1e-12)
+
+
+def _check_out_of_range(c, states, past_last, atol):
+    """``states`` (with -2 entries) match the layered pass; setting the entry ``past_last`` to
+    the number of states makes both engines raise IndexError."""
+    assert np.allclose(forward(c, states), forward(c, states, engine="layers"), atol=atol)
+    states = states.copy()
+    states[past_last] = 2
     with pytest.raises(IndexError):
         forward(c, states, engine="layers")
     with pytest.raises(IndexError):
@@ -293,10 +300,5 @@ def test_out_of_range_states_on_the_lean_program(topology):
     assert _region_plan(c).thin.lean is not None
     states = np.random.default_rng(0).integers(-1, 2, size=(40, 3))
     states[5, 1] = -2
-    assert np.allclose(forward(c, states), forward(c, states, engine="layers"), atol=1e-9)
-    states[7, 2] = 2
-    with pytest.raises(IndexError):
-        forward(c, states, engine="layers")
-    with pytest.raises(IndexError):
-        forward(c, states)
+    _check_out_of_range(c, states, (7, 2), atol=1e-9)
 
